@@ -1,0 +1,529 @@
+r"""ANI ensemble potential of the region, in vacuum, built for speed on a CPU.
+
+The energy
+----------
+ANI writes the energy of a molecule as a sum of atomic contributions, each a neural network of the
+atom's element Z_i applied to its atomic environment vector (AEV) G_i:
+
+    E = sum_i [ NN_{Z_i}(G_i) + E0_{Z_i} ]
+
+with E0_Z the element's self (reference) energy. The AEV (Smith, Isayev, Roitberg, Chem. Sci. 8,
+3192 (2017), from memory) has a radial part, per neighbour element s and shift R_k,
+
+    G^R_{i,s,k} = sum_{j in s} 0.25 exp(-eta_R (r_ij - R_k)^2) f_c(r_ij; R_c^R)
+
+and an angular part, per unordered neighbour element pair (s, s'), radial shift R_k and angular
+section theta_l,
+
+    G^A_{i,ss',k,l} = sum_{j<k' in (s,s')} 2 [(1 + cos(theta_ijk' - theta_l)) / 2]^zeta
+                      exp(-eta_A ((r_ij + r_ik')/2 - R_k)^2) f_c(r_ij) f_c(r_ik')
+
+with f_c(r; R_c) = 0.5 cos(pi r / R_c) + 0.5 inside the cutoff, 0 outside, and, as in NeuroChem and
+torchani, theta = acos(0.95 cos theta_true). An ensemble averages 8 independently trained networks:
+E = mean_m E_m; the members' spread is a free uncertainty estimate.
+
+Models (citations from memory):
+- ``ani1x``: Smith et al., J. Chem. Phys. 148, 241733 (2018); wB97X/6-31G(d); H, C, N, O.
+- ``ani1ccx``: Smith et al., Nat. Commun. 10, 2903 (2019); CCSD(T)*/CBS (includes dispersion);
+  H, C, N, O.
+- ``ani2x``: Devereux et al., J. Chem. Theory Comput. 16, 4192 (2020); wB97X/6-31G(d);
+  H, C, N, O, F, S, Cl.
+All are trained on neutral molecules; the term refuses other charges and elements.
+
+How it is fast (and still exactly the same function as torchani's)
+------------------------------------------------------------------
+Measured against torchani's stock ensemble (energy + forces by autograd), see
+``benchmarks/bench_ani_ensemble.py``:
+
+- **Members batched.** The 8 members x E elements networks run as one zero-padded batched matmul
+  per layer (first layer: the 8 members' weights concatenated, so the shared AEV is read once),
+  instead of 32 small networks one after the other. Padding rows/units are zero and contribute
+  exactly nothing.
+- **Hand-written network backward.** dE/dG uses CELU'(z) = 1 + 10 min(celu(z), 0) (alpha = 0.1)
+  and the transposed weights; no autograd graph over the networks.
+- **Neighbour list with a skin.** Pairs within R_c^R + skin and angular triples within
+  R_c^A + skin are listed once (numpy) and re-used until an atom has moved, relative to the mean
+  displacement (so translating the molecule costs nothing), by more than skin/2 since the list
+  was built. Listed pairs outside the true cutoff get f_c = 0 exactly, so results do not depend on
+  the skin.
+- **Dead AEV columns dropped.** AEV blocks of elements absent from the region, and angular blocks
+  of element pairs that have no triple in the current list, are identically zero until the next
+  rebuild; they and their first-layer weight rows are left out (this matters most for ANI-2x,
+  whose 1008-wide AEV shrinks to 384 columns for an H/C/N/O ligand).
+- **Species built once**, weights packed once per (model, elements, precision) and cached; the
+  AEV's own backward uses ``torch.autograd.grad`` with no graph retained.
+
+Precision: ``precision="float32"`` (default) or ``"float64"``. float32 is the default because it is
+what torchani runs and it is measured faster (the networks are bound by reading the weights,
+twice the bytes in float64); its energies agree with the float64 evaluation to ~1e-7 relative. The
+self energies are always summed in float64. Energy drift in NVE is checked by the lead
+separately; choose float64 if that check asks for it.
+
+``extras`` of each result:
+- ``member_energies_kjmol``: list of the 8 members' total energies, kJ/mol;
+- ``ensemble_std_kjmol``: their standard deviation (sample std, ddof = 1, as torchani's
+  ``energies_qbcs``);
+- ``ensemble_std_per_atom_kjmol``: that divided by sqrt(n_atoms) -- torchani's QBC factor rho
+  (Smith et al. 2018), the number its active learning thresholds.
+- ``neighbour_list_rebuilt``: whether this call rebuilt the list.
+"""
+from __future__ import annotations
+
+import functools
+import math
+import os
+from typing import Optional
+
+import numpy as np
+import torch
+
+from .. import units
+from ..errors import DomainError, OptionError
+from .base import RegionInfo, RegionTerm, TermContent, TermResult
+
+__all__ = ["make_term", "AniTerm", "stock_ensemble", "stock_energy_forces", "MODEL_CONTENT",
+           "DEFAULT_PRECISION", "DEFAULT_SKIN_NM"]
+
+DEFAULT_PRECISION = "float32"
+#: neighbour-list skin, nm (rebuild when an atom moved > skin/2 relative to the mean motion)
+DEFAULT_SKIN_NM = 0.05
+
+_HCNO = frozenset({"H", "C", "N", "O"})
+_ANI2X_ELEMENTS = frozenset({"H", "C", "N", "O", "F", "S", "Cl"})
+_CUTOFF_NM = 0.52  # radial AEV cutoff of ANI-1x / ANI-1ccx (5.2 angstrom)
+_ELECTRO = "short-range only, implicit in the AEV within its cutoff; no long-range electrostatics"
+
+#: what each model contains (reference, dispersion, elements, charges, cutoff)
+MODEL_CONTENT = {
+    "ani1x": TermContent("wB97X/6-31G(d)", "none", _ELECTRO, _HCNO, (0,), _CUTOFF_NM),
+    "ani1ccx": TermContent("CCSD(T)*/CBS", "included", _ELECTRO, _HCNO, (0,), _CUTOFF_NM),
+    "ani2x": TermContent("wB97X/6-31G(d)", "none", _ELECTRO, _ANI2X_ELEMENTS, (0,), 0.51),
+}
+
+_OPTIONS = ("model", "precision", "skin_nm", "weights_dir")
+_DTYPES = {"float32": torch.float32, "float64": torch.float64}
+_HA_A_TO_KJMOL_NM = units.HARTREE_PER_ANGSTROM_TO_KJMOL_PER_NM
+
+
+# ---------------------------------------------------------------------------------------------
+# construction
+# ---------------------------------------------------------------------------------------------
+def make_term(region: RegionInfo, **options) -> "AniTerm":
+    """Build the ANI term for ``region``.
+
+    Keyword-only options
+    --------------------
+    model : "ani1x" (default), "ani1ccx" or "ani2x"
+    precision : "float32" (default; measured faster, see the module docstring) or "float64"
+    skin_nm : neighbour-list skin, nm (default 0.05); any value >= 0 gives the same numbers
+    weights_dir : folder with the weights (default: the cache of :mod:`mlbridge.models`)
+
+    Raises
+    ------
+    OptionError for an unknown option or value; DomainError for elements or a net charge the
+    model was not trained on (checked before any weights are read); ModelUnavailableError when
+    the weights are not on disk (the message gives the fetch command).
+    """
+    unknown = sorted(set(options) - set(_OPTIONS))
+    if unknown:
+        raise OptionError(f"ani: unknown option(s) {unknown}; known options: {list(_OPTIONS)}")
+    model = options.get("model", "ani1x")
+    precision = options.get("precision", DEFAULT_PRECISION)
+    skin_nm = options.get("skin_nm", DEFAULT_SKIN_NM)
+    if model not in MODEL_CONTENT:
+        raise OptionError(f"ani: model={model!r} unknown; choose one of {sorted(MODEL_CONTENT)}")
+    if precision not in _DTYPES:
+        raise OptionError(f"ani: precision={precision!r}; choose 'float32' or 'float64'")
+    try:
+        skin_nm = float(skin_nm)
+    except (TypeError, ValueError):
+        raise OptionError(f"ani: skin_nm={skin_nm!r} is not a number (nm)") from None
+    if not (skin_nm >= 0.0 and math.isfinite(skin_nm)):
+        raise OptionError(f"ani: skin_nm={skin_nm!r} must be >= 0 (nm)")
+    check_domain(region, model)
+    params = _load_parameters_cached(model, options.get("weights_dir"))
+    return AniTerm(region, params, model=model, precision=precision, skin_nm=skin_nm)
+
+
+def check_domain(region: RegionInfo, model: str) -> None:
+    """Raise DomainError unless the region's elements and net charge are in ``model``'s domain."""
+    content = MODEL_CONTENT[model]
+    allowed = content.elements
+    bad = [(i, s) for i, s in enumerate(region.symbols) if s not in allowed]
+    if bad:
+        shown = ", ".join(f"{i} ({s})" for i, s in bad[:20])
+        more = f" and {len(bad) - 20} more" if len(bad) > 20 else ""
+        alternatives = []
+        if model != "ani2x" and all(s in _ANI2X_ELEMENTS for _, s in bad):
+            alternatives.append("model 'ani2x' (H, C, N, O, F, S, Cl)")
+        alternatives.append("the semi-empirical treatment 'xtb' (GFN2-xTB)")
+        raise DomainError(
+            f"{model} supports only the elements {{{', '.join(sorted(allowed))}}}; region atom(s) "
+            f"{shown}{more} are outside it. Use " + " or ".join(alternatives) + ".")
+    if content.net_charges is not None and region.net_charge not in content.net_charges:
+        raise DomainError(
+            f"{model} was trained on neutral molecules only (net charge 0); the region has net "
+            f"charge {region.net_charge:+d}. Use the semi-empirical treatment 'xtb' (GFN2-xTB), "
+            f"which handles charged molecules, or a neutral protonation state.")
+
+
+def _weights_key(model, weights_dir):
+    from .. import models
+
+    path = models.locate(model, weights_dir)
+    return str(path), path.stat().st_mtime_ns
+
+
+@functools.lru_cache(maxsize=8)
+def _load_by_key(model, path, _mtime, weights_dir):
+    from .. import models
+
+    return models.load_parameters(model, weights_dir=weights_dir)
+
+
+def _load_parameters_cached(model, weights_dir=None):
+    path, mtime = _weights_key(model, weights_dir)  # raises ModelUnavailableError
+    return _load_by_key(model, path, mtime, None if weights_dir is None else str(weights_dir))
+
+
+# ---------------------------------------------------------------------------------------------
+# packed networks
+# ---------------------------------------------------------------------------------------------
+class _PackedNetworks:
+    """Members x present elements networks packed as zero-padded batched matrices.
+
+    Layer 1: ``w1[e]`` is (F_full, M * h1): the M members' first layers side by side, so the
+    shared AEV of element e is multiplied once. Layers 2..: (E*M, h_in, h_out), batch e*M + m.
+    """
+
+    def __init__(self, params, elements, dtype):
+        M = len(params.members)
+        self.n_members = M
+        depth = len(params.members[0][elements[0]])
+        for mem in params.members:
+            for e in elements:
+                if len(mem[e]) != depth:
+                    raise ValueError("all atomic networks must have the same depth")
+        widths = [max(params.members[m][e][k][0].shape[0] for m in range(M) for e in elements)
+                  for k in range(depth)]
+        f_full = params.members[0][elements[0]][0][0].shape[1]
+        E = len(elements)
+        h1 = widths[0]
+        w1 = np.zeros((E, f_full, M, h1), np.float64)
+        b1 = np.zeros((E, 1, M, h1), np.float64)
+        ws, bs = [], []
+        for k in range(1, depth):
+            ws.append(np.zeros((E, M, widths[k - 1], widths[k]), np.float64))
+            bs.append(np.zeros((E, M, 1, widths[k]), np.float64))
+        for ei, e in enumerate(elements):
+            for m in range(M):
+                layers = params.members[m][e]
+                w, b = layers[0]
+                w1[ei, :, m, : w.shape[0]] = w.T
+                b1[ei, 0, m, : w.shape[0]] = b
+                for k in range(1, depth):
+                    w, b = layers[k]
+                    ws[k - 1][ei, m, : w.shape[1], : w.shape[0]] = w.T
+                    bs[k - 1][ei, m, 0, : w.shape[0]] = b
+        t = lambda a: torch.from_numpy(a).to(dtype).contiguous()  # noqa: E731
+        self.w1_full = t(w1.reshape(E, f_full, M * h1))
+        self.b1 = t(b1.reshape(E, 1, M * h1))
+        self.ws = [t(w.reshape(E * M, w.shape[2], w.shape[3])) for w in ws]
+        self.bs = [t(b.reshape(E * M, 1, b.shape[3])) for b in bs]
+        self.wts = [w.transpose(1, 2) for w in self.ws]
+        self.h1 = h1
+        self.n_elements = E
+        self.columns = None
+        self.w1 = None
+        self.w1t = None
+
+    def select_columns(self, columns: torch.Tensor) -> None:
+        """Keep only these AEV columns (rows of the first layer)."""
+        if self.columns is not None and torch.equal(self.columns, columns):
+            return
+        self.columns = columns
+        self.w1 = self.w1_full.index_select(1, columns).contiguous()
+        self.w1t = self.w1.transpose(1, 2)
+
+    def energies_and_input_grad(self, x, mask_mean, mask_sum):
+        """x: (E, n_max, F) AEVs. Returns member NN energies (M,) and d(mean E)/dx."""
+        E, n, _ = x.shape
+        M = self.n_members
+        h1 = self.h1
+        a = torch.baddbmm(self.b1, x, self.w1)  # (E, n, M*h1)
+        a = torch.nn.functional.celu(a, alpha=0.1)
+        a = a.view(E, n, M, h1).transpose(1, 2).reshape(E * M, n, h1)
+        acts = [a]
+        last = len(self.ws) - 1
+        for k, (w, b) in enumerate(zip(self.ws, self.bs)):
+            a = torch.baddbmm(b, a, w)
+            if k < last:
+                a = torch.nn.functional.celu(a, alpha=0.1)
+                acts.append(a)
+        y = a.view(E, M, n)  # atomic NN outputs
+        member = (y * mask_sum).sum(dim=(0, 2))  # (M,)
+        # backward of mean_m sum_atoms y: dy = mask / M
+        g = mask_mean * self.wts[last]  # (E*M, n, 1) * (E*M, 1, h_last) -> (E*M, n, h_last)
+        for k in range(last, -1, -1):
+            act = acts[k]
+            g = g * (1.0 + 10.0 * act.clamp(max=0.0))  # CELU'(z), alpha = 0.1
+            if k > 0:
+                g = torch.bmm(g, self.wts[k - 1])
+        g = g.view(E, M, n, h1).transpose(1, 2).reshape(E, n, M * h1)
+        gx = torch.bmm(g, self.w1t)  # (E, n, F)
+        return member, gx
+
+
+@functools.lru_cache(maxsize=8)
+def _packed(params_id, elements, dtype_name):
+    params = _PARAMS_BY_ID[params_id]
+    return _PackedNetworks(params, elements, _DTYPES[dtype_name])
+
+
+_PARAMS_BY_ID: dict = {}
+
+
+# ---------------------------------------------------------------------------------------------
+# the term
+# ---------------------------------------------------------------------------------------------
+class AniTerm(RegionTerm):
+    """ANI ensemble of the region in vacuum; see the module docstring for the method."""
+
+    uses_environment = False
+
+    def __init__(self, region: RegionInfo, params, *, model: str = "ani1x",
+                 precision: str = DEFAULT_PRECISION, skin_nm: float = DEFAULT_SKIN_NM):
+        self.name = model
+        self.model = model
+        self.precision = precision
+        self.content = MODEL_CONTENT[model]
+        self.dtype = _DTYPES[precision]
+        self.region = region
+        self.n_atoms = n = region.n_atoms
+        self.skin_a = float(skin_nm) / units.ANGSTROM_NM
+        p = params
+        sym_index = {s: k for k, s in enumerate(p.symbols)}
+        species = np.array([sym_index[s] for s in region.symbols], dtype=np.int64)
+        present = sorted(set(species.tolist()))  # model species indices, model order
+        elements = tuple(p.symbols[k] for k in present)
+        self.elements = elements
+        S = len(p.symbols)
+        # compact species index among present elements, slots in the padded layout
+        compact = {k: c for c, k in enumerate(present)}
+        self.species_c = np.array([compact[k] for k in species], dtype=np.int64)
+        counts = np.bincount(self.species_c, minlength=len(present))
+        n_max = int(counts.max())
+        local = np.zeros(n, dtype=np.int64)
+        seen = np.zeros(len(present), dtype=np.int64)
+        for i, c in enumerate(self.species_c):
+            local[i] = seen[c]
+            seen[c] += 1
+        self.slot = self.species_c * n_max + local  # row in (E * n_max)
+        self.n_max = n_max
+        self.n_present = Ep = len(present)
+        # AEV column bookkeeping, in the model's full layout
+        n_rad, n_ang_r, n_ang_s = len(p.radial_shifts), len(p.angular_shifts), len(p.angular_sections)
+        self.n_rad, self.n_ang = n_rad, n_ang_r * n_ang_s
+        triu = np.zeros((S, S), dtype=np.int64)
+        iu = np.triu_indices(S)
+        triu[iu] = np.arange(len(iu[0]))
+        triu[iu[1], iu[0]] = np.arange(len(iu[0]))
+        self._triu_full = triu
+        self._present = present
+        # compact pair id among present elements (ordered by the model's pair id)
+        pairs_present = sorted({int(triu[a, b]) for a in present for b in present})
+        self._pair_compact = {pid: c for c, pid in enumerate(pairs_present)}
+        self._pairs_present = pairs_present
+        self._pair_of_compact_species = np.array(
+            [[self._pair_compact[int(triu[present[a], present[b]])] for b in range(Ep)]
+             for a in range(Ep)], dtype=np.int64)
+        self._radial_columns = np.concatenate(
+            [np.arange(k * n_rad, (k + 1) * n_rad) for k in present])
+        self._ang_col0 = S * n_rad
+        # constants
+        dt = self.dtype
+        self.rc_r, self.rc_a = float(p.radial_cutoff), float(p.angular_cutoff)
+        self.eta_r = float(p.radial_eta)
+        self.shf_r = torch.tensor(p.radial_shifts, dtype=dt)
+        self.eta_a = float(p.angular_eta)
+        self.zeta = float(p.angular_zeta)
+        self.shf_a = torch.tensor(p.angular_shifts, dtype=dt)
+        sections = np.asarray(p.angular_sections, dtype=np.float64)
+        self.cos_sec = torch.tensor(np.cos(sections), dtype=dt)
+        self.sin_sec = torch.tensor(np.sin(sections), dtype=dt)
+        self.self_energy_sum = float(sum(p.self_energies[s] for s in region.symbols))  # hartree
+        # networks (cached across terms built from the same parameters)
+        _PARAMS_BY_ID[id(p)] = p
+        self._params = p  # keep alive so id() stays valid
+        self.nets = _packed(id(p), elements, precision)
+        M = self.nets.n_members
+        mask = np.zeros((Ep, n_max), dtype=np.float64)
+        mask[self.species_c, local] = 1.0
+        self.mask_sum = torch.tensor(mask, dtype=dt).view(Ep, 1, n_max)
+        self.mask_mean = (torch.tensor(mask, dtype=dt) / M).view(Ep, 1, n_max, 1).expand(
+            Ep, M, n_max, 1).reshape(Ep * M, n_max, 1)
+        self._ref = None  # positions (angstrom) at the last neighbour-list build
+        self.n_rebuilds = 0
+
+    # -- neighbour list ------------------------------------------------------------------------
+    def _needs_rebuild(self, x: np.ndarray) -> bool:
+        if self._ref is None:
+            return True
+        d = x - self._ref
+        d -= d.mean(axis=0)
+        return float(np.max(np.einsum("ij,ij->i", d, d))) > (0.5 * self.skin_a) ** 2
+
+    def _rebuild(self, x: np.ndarray) -> None:
+        n = self.n_atoms
+        diff = x[None, :, :] - x[:, None, :]
+        dist = np.sqrt(np.einsum("ijk,ijk->ij", diff, diff))
+        iu, ju = np.triu_indices(n, 1)
+        keep = dist[iu, ju] < self.rc_r + self.skin_a
+        pi, pj = iu[keep], ju[keep]
+        pair_id = -np.ones((n, n), dtype=np.int64)
+        pair_id[pi, pj] = np.arange(len(pi))
+        pair_id[pj, pi] = np.arange(len(pi))
+        sc = self.species_c
+        Ep = self.n_present
+        rad_index = np.concatenate([self.slot[pi] * Ep + sc[pj], self.slot[pj] * Ep + sc[pi]])
+        # angular triples: centre c, sides j < k, both within rc_a + skin of c
+        near = (dist < self.rc_a + self.skin_a) & ~np.eye(n, dtype=bool)
+        tc, tj, tk = [], [], []
+        for c in range(n):
+            nb = np.nonzero(near[c])[0]
+            if len(nb) < 2:
+                continue
+            a, b = np.triu_indices(len(nb), 1)
+            tc.append(np.full(len(a), c))
+            tj.append(nb[a])
+            tk.append(nb[b])
+        if tc:
+            tc, tj, tk = (np.concatenate(v) for v in (tc, tj, tk))
+        else:
+            tc = tj = tk = np.zeros(0, dtype=np.int64)
+        pa, pb = pair_id[tc, tj], pair_id[tc, tk]
+        # stored pair vector is x[pj] - x[pi]; the leg from c is +v if c is that pair's pi
+        sign = np.where(pi[pa] == tc, 1.0, -1.0) * np.where(pi[pb] == tc, 1.0, -1.0)
+        pair_c = self._pair_of_compact_species[sc[tj], sc[tk]]
+        active = sorted(set(pair_c.tolist()))  # compact pair ids with at least one triple
+        remap = -np.ones(len(self._pairs_present), dtype=np.int64)
+        remap[active] = np.arange(len(active))
+        n_act = len(active)
+        ang_index = self.slot[tc] * max(n_act, 1) + remap[pair_c]
+        # AEV columns kept, in the model's full layout: radial blocks of present elements, then
+        # angular blocks of active pairs
+        cols = [self._radial_columns]
+        for c in active:
+            pid = self._pairs_present[c]
+            cols.append(self._ang_col0 + pid * self.n_ang + np.arange(self.n_ang))
+        self.nets.select_columns(torch.from_numpy(np.concatenate(cols)))
+        L = torch.from_numpy
+        self._pi, self._pj = L(pi), L(pj)
+        self._rad_index = L(rad_index)
+        self._pa, self._pb = L(pa), L(pb)
+        self._sign = torch.tensor(sign, dtype=self.dtype).unsqueeze(1)
+        self._ang_index = L(ang_index)
+        self._n_act = n_act
+        self._ref = x.copy()
+        self.n_rebuilds += 1
+
+    # -- AEV -------------------------------------------------------------------------------------
+    def _aev(self, xt: torch.Tensor) -> torch.Tensor:
+        """Compact, padded AEVs (E, n_max, F') of coordinates xt (n, 3) angstrom."""
+        Ep, n_max = self.n_present, self.n_max
+        rows = Ep * n_max
+        v = xt.index_select(0, self._pj) - xt.index_select(0, self._pi)  # (P, 3)
+        r = torch.linalg.vector_norm(v, dim=1)  # (P,)
+        pi_over = math.pi / self.rc_r
+        fc = torch.where(r < self.rc_r, 0.5 * torch.cos(r * pi_over) + 0.5, torch.zeros_like(r))
+        rad = (0.25 * torch.exp(-self.eta_r * (r.unsqueeze(1) - self.shf_r) ** 2)) * fc.unsqueeze(1)
+        radial = xt.new_zeros((rows * Ep, self.n_rad))
+        radial = radial.index_add(0, self._rad_index, torch.cat([rad, rad]))
+        radial = radial.view(rows, Ep * self.n_rad)
+        if self._n_act == 0:
+            return radial.view(Ep, n_max, -1)
+        va = v.index_select(0, self._pa)
+        vb = v.index_select(0, self._pb)
+        ra = r.index_select(0, self._pa)
+        rb = r.index_select(0, self._pb)
+        fca_pair = torch.where(r < self.rc_a, 0.5 * torch.cos(r * (math.pi / self.rc_a)) + 0.5,
+                               torch.zeros_like(r))
+        fcab = fca_pair.index_select(0, self._pa) * fca_pair.index_select(0, self._pb)
+        rab = ra * rb
+        cos_t = (va * vb).sum(dim=1, keepdim=True) * self._sign / torch.clamp(
+            rab, min=1e-10).unsqueeze(1)
+        c95 = 0.95 * cos_t
+        s95 = torch.sqrt(1.0 - c95 * c95)
+        # cos(acos(c95) - theta_l) = c95 cos(theta_l) + sqrt(1 - c95^2) sin(theta_l)
+        ang = 2.0 * ((1.0 + c95 * self.cos_sec + s95 * self.sin_sec) * 0.5) ** self.zeta  # (T, L)
+        mean_r = 0.5 * (ra + rb)
+        radA = torch.exp(-self.eta_a * (mean_r.unsqueeze(1) - self.shf_a) ** 2) * fcab.unsqueeze(1)
+        terms = (radA.unsqueeze(2) * ang.unsqueeze(1)).reshape(-1, self.n_ang)
+        angular = xt.new_zeros((rows * self._n_act, self.n_ang))
+        angular = angular.index_add(0, self._ang_index, terms)
+        angular = angular.view(rows, self._n_act * self.n_ang)
+        return torch.cat([radial, angular], dim=1).view(Ep, n_max, -1)
+
+    # -- evaluation ------------------------------------------------------------------------------
+    def energy_forces(self, region_nm, box_nm=None, environment_nm=None) -> TermResult:
+        """Energy (kJ/mol) and forces (kJ/mol/nm) of the region in vacuum; ``box_nm`` ignored."""
+        x = np.asarray(region_nm, dtype=np.float64).reshape(self.n_atoms, 3) / units.ANGSTROM_NM
+        rebuilt = self._needs_rebuild(x)
+        if rebuilt:
+            self._rebuild(x)
+        xt = torch.from_numpy(x).to(self.dtype).requires_grad_(True)
+        with torch.enable_grad():
+            aev = self._aev(xt)
+        with torch.no_grad():
+            member_nn, gx = self.nets.energies_and_input_grad(aev.detach(), self.mask_mean,
+                                                              self.mask_sum)
+        (grad,) = torch.autograd.grad(aev, xt, gx, retain_graph=False)
+        member_ha = member_nn.double().numpy() + self.self_energy_sum
+        energy_ha = float(member_ha.mean())
+        forces = -grad.double().numpy() * _HA_A_TO_KJMOL_NM
+        member_kj = member_ha * units.HARTREE_KJMOL
+        std = float(np.std(member_kj, ddof=1)) if len(member_kj) > 1 else 0.0
+        extras = {
+            "member_energies_kjmol": member_kj.tolist(),
+            "ensemble_std_kjmol": std,
+            "ensemble_std_per_atom_kjmol": std / math.sqrt(self.n_atoms),
+            "neighbour_list_rebuilt": rebuilt,
+        }
+        return TermResult(energy=energy_ha * units.HARTREE_KJMOL, region_forces=forces,
+                          extras=extras)
+
+    def describe(self):
+        d = super().describe()
+        d.update(model=self.model, precision=self.precision, skin_nm=self.skin_a * units.ANGSTROM_NM,
+                 ensemble_size=self.nets.n_members)
+        return d
+
+
+# ---------------------------------------------------------------------------------------------
+# the stock reference (tests, benchmark)
+# ---------------------------------------------------------------------------------------------
+def stock_ensemble(model_name: str = "ani1x", precision: str = DEFAULT_PRECISION,
+                   weights_dir: Optional[os.PathLike] = None):
+    """torchani's own ensemble model (torchani.arch.ANI) from the same weight files, in the given
+    precision; input (atomic numbers (1, n), angstrom (1, n, 3)), output hartree."""
+    from .. import models
+
+    if precision not in _DTYPES:
+        raise OptionError(f"precision={precision!r}; choose 'float32' or 'float64'")
+    return models.stock_model(model_name, weights_dir=weights_dir, dtype=_DTYPES[precision])
+
+
+def stock_energy_forces(model, atomic_numbers, region_nm):
+    """Energy (kJ/mol), forces (kJ/mol/nm) and member energies (kJ/mol) from a stock torchani
+    model by autograd, converting angstrom/hartree at the edge."""
+    dtype = next(model.parameters()).dtype
+    species = torch.tensor([list(atomic_numbers)], dtype=torch.long)
+    x = torch.tensor(np.asarray(region_nm, dtype=np.float64) / units.ANGSTROM_NM,
+                     dtype=dtype).unsqueeze(0).requires_grad_(True)
+    e = model((species, x)).energies.sum()
+    (g,) = torch.autograd.grad(e, x)
+    with torch.no_grad():
+        members = model((species, x.detach()), ensemble_values=True).energies.reshape(-1)
+    return (float(e) * units.HARTREE_KJMOL,
+            -g[0].double().numpy() * _HA_A_TO_KJMOL_NM,
+            members.double().numpy() * units.HARTREE_KJMOL)
