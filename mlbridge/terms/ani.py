@@ -189,95 +189,83 @@ def _load_parameters_cached(model, weights_dir=None):
 # ---------------------------------------------------------------------------------------------
 # packed networks
 # ---------------------------------------------------------------------------------------------
-class _PackedNetworks:
-    """Members x present elements networks packed as zero-padded batched matrices.
+class _ElementNetworks:
+    """The M members' networks of one element, packed for batched evaluation.
 
-    Layer 1: ``w1[e]`` is (F_full, M * h1): the M members' first layers side by side, so the
-    shared AEV of element e is multiplied once. Layers 2..: (E*M, h_in, h_out), batch e*M + m.
+    Layer 1: ``w1`` is (F_full, M * h1), the members' first layers side by side, so the shared
+    AEV is multiplied once; deeper layers are (M, h_in, h_out) for one batched matmul each.
+    Members with narrower layers are zero-padded (padding units contribute exactly zero).
     """
 
-    def __init__(self, params, elements, dtype):
-        M = len(params.members)
-        self.n_members = M
-        depth = len(params.members[0][elements[0]])
-        for mem in params.members:
-            for e in elements:
-                if len(mem[e]) != depth:
-                    raise ValueError("all atomic networks must have the same depth")
-        widths = [max(params.members[m][e][k][0].shape[0] for m in range(M) for e in elements)
-                  for k in range(depth)]
-        f_full = params.members[0][elements[0]][0][0].shape[1]
-        E = len(elements)
+    def __init__(self, params, element, dtype):
+        layers = [mem[element] for mem in params.members]
+        M = len(layers)
+        depth = len(layers[0])
+        if any(len(l) != depth for l in layers):
+            raise ValueError(f"{element}: all members' networks must have the same depth")
+        widths = [max(l[k][0].shape[0] for l in layers) for k in range(depth)]
+        f_full = layers[0][0][0].shape[1]
         h1 = widths[0]
-        w1 = np.zeros((E, f_full, M, h1), np.float64)
-        b1 = np.zeros((E, 1, M, h1), np.float64)
-        ws, bs = [], []
-        for k in range(1, depth):
-            ws.append(np.zeros((E, M, widths[k - 1], widths[k]), np.float64))
-            bs.append(np.zeros((E, M, 1, widths[k]), np.float64))
-        for ei, e in enumerate(elements):
-            for m in range(M):
-                layers = params.members[m][e]
-                w, b = layers[0]
-                w1[ei, :, m, : w.shape[0]] = w.T
-                b1[ei, 0, m, : w.shape[0]] = b
-                for k in range(1, depth):
-                    w, b = layers[k]
-                    ws[k - 1][ei, m, : w.shape[1], : w.shape[0]] = w.T
-                    bs[k - 1][ei, m, 0, : w.shape[0]] = b
+        w1 = np.zeros((f_full, M, h1), np.float32)
+        b1 = np.zeros((M, h1), np.float32)
+        ws = [np.zeros((M, widths[k - 1], widths[k]), np.float32) for k in range(1, depth)]
+        bs = [np.zeros((M, 1, widths[k]), np.float32) for k in range(1, depth)]
+        for m, net in enumerate(layers):
+            w, b = net[0]
+            w1[:, m, : w.shape[0]] = w.T
+            b1[m, : w.shape[0]] = b
+            for k in range(1, depth):
+                w, b = net[k]
+                ws[k - 1][m, : w.shape[1], : w.shape[0]] = w.T
+                bs[k - 1][m, 0, : w.shape[0]] = b
         t = lambda a: torch.from_numpy(a).to(dtype).contiguous()  # noqa: E731
-        self.w1_full = t(w1.reshape(E, f_full, M * h1))
-        self.b1 = t(b1.reshape(E, 1, M * h1))
-        self.ws = [t(w.reshape(E * M, w.shape[2], w.shape[3])) for w in ws]
-        self.bs = [t(b.reshape(E * M, 1, b.shape[3])) for b in bs]
+        self.w1_full = t(w1.reshape(f_full, M * h1))
+        self.b1 = t(b1.reshape(M * h1))
+        self.ws = [t(w) for w in ws]
+        self.bs = [t(b) for b in bs]
         self.wts = [w.transpose(1, 2) for w in self.ws]
-        self.h1 = h1
-        self.n_elements = E
+        self.n_members, self.h1 = M, h1
         self.columns = None
-        self.w1 = None
-        self.w1t = None
+        self.w1 = self.w1t = None
 
     def select_columns(self, columns: torch.Tensor) -> None:
-        """Keep only these AEV columns (rows of the first layer)."""
+        """Keep only these AEV columns (rows of the first layer); the others are zero."""
         if self.columns is not None and torch.equal(self.columns, columns):
             return
         self.columns = columns
-        self.w1 = self.w1_full.index_select(1, columns).contiguous()
-        self.w1t = self.w1.transpose(1, 2)
+        self.w1 = self.w1_full.index_select(0, columns).contiguous()
+        self.w1t = self.w1.t()
 
-    def energies_and_input_grad(self, x, mask_mean, mask_sum):
-        """x: (E, n_max, F) AEVs. Returns member NN energies (M,) and d(mean E)/dx."""
-        E, n, _ = x.shape
-        M = self.n_members
-        h1 = self.h1
-        a = torch.baddbmm(self.b1, x, self.w1)  # (E, n, M*h1)
-        a = torch.nn.functional.celu(a, alpha=0.1)
-        a = a.view(E, n, M, h1).transpose(1, 2).reshape(E * M, n, h1)
+    def energies_and_input_grad(self, x):
+        """x: (n, F') AEVs of this element's atoms. Returns the members' summed NN energies (M,)
+        and d(mean_m E_m)/dx (n, F'), by a hand-written backward."""
+        n = x.shape[0]
+        M, h1 = self.n_members, self.h1
+        celu = torch.nn.functional.celu
+        a = celu(torch.addmm(self.b1, x, self.w1), alpha=0.1)  # (n, M*h1)
+        a = a.view(n, M, h1).transpose(0, 1)  # (M, n, h1)
         acts = [a]
         last = len(self.ws) - 1
-        for k, (w, b) in enumerate(zip(self.ws, self.bs)):
-            a = torch.baddbmm(b, a, w)
+        for k in range(len(self.ws)):
+            a = torch.baddbmm(self.bs[k], a, self.ws[k])
             if k < last:
-                a = torch.nn.functional.celu(a, alpha=0.1)
+                a = celu(a, alpha=0.1)
                 acts.append(a)
-        y = a.view(E, M, n)  # atomic NN outputs
-        member = (y * mask_sum).sum(dim=(0, 2))  # (M,)
-        # backward of mean_m sum_atoms y: dy = mask / M
-        g = mask_mean * self.wts[last]  # (E*M, n, 1) * (E*M, 1, h_last) -> (E*M, n, h_last)
+        member = a.sum(dim=(1, 2))  # (M,)
+        # backward of mean_m sum_atoms y_m
+        g = self.wts[last].expand(M, n, -1) * (1.0 / M)
         for k in range(last, -1, -1):
-            act = acts[k]
-            g = g * (1.0 + 10.0 * act.clamp(max=0.0))  # CELU'(z), alpha = 0.1
+            g = g * (1.0 + 10.0 * acts[k].clamp(max=0.0))  # CELU'(z) = 1 + min(celu(z)/alpha, 0)
             if k > 0:
                 g = torch.bmm(g, self.wts[k - 1])
-        g = g.view(E, M, n, h1).transpose(1, 2).reshape(E, n, M * h1)
-        gx = torch.bmm(g, self.w1t)  # (E, n, F)
-        return member, gx
+        g = g.transpose(0, 1).reshape(n, M * h1)
+        return member, torch.mm(g, self.w1t)
 
 
 @functools.lru_cache(maxsize=8)
-def _packed(params_id, elements, dtype_name):
+def _packed(params_id, element, dtype_name):
     params = _PARAMS_BY_ID[params_id]
-    return _PackedNetworks(params, elements, _DTYPES[dtype_name])
+    return _ElementNetworks(params, element, _DTYPES[dtype_name])
 
 
 _PARAMS_BY_ID: dict = {}
@@ -308,18 +296,16 @@ class AniTerm(RegionTerm):
         elements = tuple(p.symbols[k] for k in present)
         self.elements = elements
         S = len(p.symbols)
-        # compact species index among present elements, slots in the padded layout
+        # compact species index among present elements; AEV rows are ordered by element, so each
+        # element's atoms are one contiguous block of rows
         compact = {k: c for c, k in enumerate(present)}
         self.species_c = np.array([compact[k] for k in species], dtype=np.int64)
         counts = np.bincount(self.species_c, minlength=len(present))
-        n_max = int(counts.max())
-        local = np.zeros(n, dtype=np.int64)
-        seen = np.zeros(len(present), dtype=np.int64)
-        for i, c in enumerate(self.species_c):
-            local[i] = seen[c]
-            seen[c] += 1
-        self.slot = self.species_c * n_max + local  # row in (E * n_max)
-        self.n_max = n_max
+        offsets = np.concatenate([[0], np.cumsum(counts)[:-1]])
+        order = np.argsort(self.species_c, kind="stable")  # row -> atom
+        self.slot = np.empty(n, dtype=np.int64)  # atom -> row
+        self.slot[order] = np.arange(n)
+        self._blocks = [(int(o), int(o + c)) for o, c in zip(offsets, counts)]
         self.n_present = Ep = len(present)
         # AEV column bookkeeping, in the model's full layout
         n_rad, n_ang_r, n_ang_s = len(p.radial_shifts), len(p.angular_shifts), len(p.angular_sections)
@@ -355,13 +341,10 @@ class AniTerm(RegionTerm):
         # networks (cached across terms built from the same parameters)
         _PARAMS_BY_ID[id(p)] = p
         self._params = p  # keep alive so id() stays valid
-        self.nets = _packed(id(p), elements, precision)
-        M = self.nets.n_members
-        mask = np.zeros((Ep, n_max), dtype=np.float64)
-        mask[self.species_c, local] = 1.0
-        self.mask_sum = torch.tensor(mask, dtype=dt).view(Ep, 1, n_max)
-        self.mask_mean = (torch.tensor(mask, dtype=dt) / M).view(Ep, 1, n_max, 1).expand(
-            Ep, M, n_max, 1).reshape(Ep * M, n_max, 1)
+        self.nets = [_packed(id(p), e, precision) for e in elements]
+        self.n_members = self.nets[0].n_members
+        if any(net.n_members != self.n_members for net in self.nets):
+            raise ValueError("all elements must have the same ensemble size")
         self._ref = None  # positions (angstrom) at the last neighbour-list build
         self.n_rebuilds = 0
 
@@ -416,7 +399,9 @@ class AniTerm(RegionTerm):
         for c in active:
             pid = self._pairs_present[c]
             cols.append(self._ang_col0 + pid * self.n_ang + np.arange(self.n_ang))
-        self.nets.select_columns(torch.from_numpy(np.concatenate(cols)))
+        columns = torch.from_numpy(np.concatenate(cols))
+        for net in self.nets:
+            net.select_columns(columns)
         L = torch.from_numpy
         self._pi, self._pj = L(pi), L(pj)
         self._rad_index = L(rad_index)
@@ -429,9 +414,9 @@ class AniTerm(RegionTerm):
 
     # -- AEV -------------------------------------------------------------------------------------
     def _aev(self, xt: torch.Tensor) -> torch.Tensor:
-        """Compact, padded AEVs (E, n_max, F') of coordinates xt (n, 3) angstrom."""
-        Ep, n_max = self.n_present, self.n_max
-        rows = Ep * n_max
+        """Compact AEVs (n, F'), rows ordered by element, of coordinates xt (n, 3) angstrom."""
+        Ep = self.n_present
+        rows = self.n_atoms
         v = xt.index_select(0, self._pj) - xt.index_select(0, self._pi)  # (P, 3)
         r = torch.linalg.vector_norm(v, dim=1)  # (P,)
         pi_over = math.pi / self.rc_r
@@ -441,7 +426,7 @@ class AniTerm(RegionTerm):
         radial = radial.index_add(0, self._rad_index, torch.cat([rad, rad]))
         radial = radial.view(rows, Ep * self.n_rad)
         if self._n_act == 0:
-            return radial.view(Ep, n_max, -1)
+            return radial
         va = v.index_select(0, self._pa)
         vb = v.index_select(0, self._pb)
         ra = r.index_select(0, self._pa)
@@ -462,7 +447,7 @@ class AniTerm(RegionTerm):
         angular = xt.new_zeros((rows * self._n_act, self.n_ang))
         angular = angular.index_add(0, self._ang_index, terms)
         angular = angular.view(rows, self._n_act * self.n_ang)
-        return torch.cat([radial, angular], dim=1).view(Ep, n_max, -1)
+        return torch.cat([radial, angular], dim=1)
 
     # -- evaluation ------------------------------------------------------------------------------
     def energy_forces(self, region_nm, box_nm=None, environment_nm=None) -> TermResult:
@@ -475,8 +460,14 @@ class AniTerm(RegionTerm):
         with torch.enable_grad():
             aev = self._aev(xt)
         with torch.no_grad():
-            member_nn, gx = self.nets.energies_and_input_grad(aev.detach(), self.mask_mean,
-                                                              self.mask_sum)
+            x_aev = aev.detach()
+            member_nn = 0.0
+            grads = []
+            for net, (lo, hi) in zip(self.nets, self._blocks):
+                e_m, g = net.energies_and_input_grad(x_aev[lo:hi])
+                member_nn = member_nn + e_m
+                grads.append(g)
+            gx = torch.cat(grads) if len(grads) > 1 else grads[0]
         (grad,) = torch.autograd.grad(aev, xt, gx, retain_graph=False)
         member_ha = member_nn.double().numpy() + self.self_energy_sum
         energy_ha = float(member_ha.mean())
@@ -495,7 +486,7 @@ class AniTerm(RegionTerm):
     def describe(self):
         d = super().describe()
         d.update(model=self.model, precision=self.precision, skin_nm=self.skin_a * units.ANGSTROM_NM,
-                 ensemble_size=self.nets.n_members)
+                 ensemble_size=self.n_members)
         return d
 
 
@@ -524,6 +515,6 @@ def stock_energy_forces(model, atomic_numbers, region_nm):
     (g,) = torch.autograd.grad(e, x)
     with torch.no_grad():
         members = model((species, x.detach()), ensemble_values=True).energies.reshape(-1)
-    return (float(e) * units.HARTREE_KJMOL,
+    return (float(e.detach()) * units.HARTREE_KJMOL,
             -g[0].double().numpy() * _HA_A_TO_KJMOL_NM,
             members.double().numpy() * units.HARTREE_KJMOL)
