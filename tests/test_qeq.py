@@ -401,3 +401,36 @@ def test_solve_qeq_multiple_right_hand_sides():
         qk, muk = solve_qeq(chi[:, k], h, 1.0)
         np.testing.assert_allclose(q[:, k], qk, atol=1e-14)
         np.testing.assert_allclose(chi[:, k] + h @ q[:, k], muk, atol=1e-12)
+
+
+def test_ions_and_unordered_molecules():
+    """Molecules of different sizes (TIP3P waters, Na+, Cl-) with atoms in no particular order:
+    forces by finite differences in a triclinic box, and the same numbers as the ordered input."""
+    symbols, numbers, net, q, bonds, x = _molecule(ACETAMINOPHEN)
+    waters = _waters_around(x, [0.5, 0.75, 1.1])
+    centre = x.mean(axis=0)
+    ions = centre + np.array([[0.0, 0.62, 0.0], [0.0, 0.0, -1.12]])  # Na+ in, Cl- in the switch
+    y = np.concatenate([waters, ions])
+    qe = np.array(TIP3P_Q * 3 + (1.0, -1.0))
+    mol = np.array([0, 0, 0, 1, 1, 1, 2, 2, 2, 7, 5])
+    perm = np.random.default_rng(2).permutation(len(y))
+    box = BOXES["triclinic"]
+    results = []
+    for order in (np.arange(len(y)), perm):
+        region = RegionInfo(symbols=symbols, atomic_numbers=numbers, net_charge=net,
+                            classical_charges=q, environment_charges=tuple(qe[order]),
+                            environment_molecules=tuple(mol[order]))
+        term = make_term(region, mode="anchored")
+        yy = y[order] + np.random.default_rng(4).integers(-1, 2, size=(len(y), 1)) * box[2]
+        res = term.energy_forces(x, box, yy)
+        fe = np.empty_like(res.environment_forces)
+        fe[order] = res.environment_forces
+        results.append((res.energy, res.region_forces, fe))
+        assert res.extras["n_molecules_in_cutoff"] == 5
+    assert results[1][0] == pytest.approx(results[0][0], abs=1e-10)
+    np.testing.assert_allclose(results[1][1], results[0][1], atol=1e-9)
+    np.testing.assert_allclose(results[1][2], results[0][2], atol=1e-9)
+    fx, fy = _fd_forces(term, x, box, yy)
+    scale = np.abs(res.region_forces).max()
+    np.testing.assert_allclose(res.region_forces, fx, atol=1e-6 * scale)
+    np.testing.assert_allclose(res.environment_forces, fy, atol=1e-6 * scale)

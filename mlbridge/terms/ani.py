@@ -329,12 +329,15 @@ class AniTerm(RegionTerm):
         # constants
         dt = self.dtype
         self.rc_r, self.rc_a = float(p.radial_cutoff), float(p.angular_cutoff)
-        self.eta_r = float(p.radial_eta)
-        self.shf_r = torch.tensor(p.radial_shifts, dtype=dt)
-        self.eta_a = float(p.angular_eta)
-        self.zeta = float(p.angular_zeta)
-        self.shf_a = torch.tensor(p.angular_shifts, dtype=dt)
-        sections = np.asarray(p.angular_sections, dtype=np.float64)
+        self.eta_r = float(np.float32(p.radial_eta))
+        # torchani keeps the AEV shifts and sections as float32 buffers; rounding them the same
+        # way makes float64 results equal torchani's float64 model to ~1e-8 (not ~1e-6).
+        f32 = lambda v: np.asarray(v, dtype=np.float32).astype(np.float64)  # noqa: E731
+        self.shf_r = torch.tensor(f32(p.radial_shifts), dtype=dt)
+        self.eta_a = float(np.float32(p.angular_eta))
+        self.zeta = float(np.float32(p.angular_zeta))
+        self.shf_a = torch.tensor(f32(p.angular_shifts), dtype=dt)
+        sections = f32(p.angular_sections)
         self.cos_sec = torch.tensor(np.cos(sections), dtype=dt)
         self.sin_sec = torch.tensor(np.sin(sections), dtype=dt)
         self.self_energy_sum = float(sum(p.self_energies[s] for s in region.symbols))  # hartree
