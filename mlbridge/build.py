@@ -58,7 +58,8 @@ class BuiltSystem:
         return {int(k): v for k, v in self.metadata.get("force_groups", {"0": "classical"}).items()}
 
     def save(self, folder: Union[str, os.PathLike]) -> Path:
-        """Write ``system.xml``, ``start.pdb``, ``metadata.json`` into ``folder`` atomically.
+        """Write ``system.xml``, ``start.pdb`` (topology, for viewers), ``start-positions.npy``
+        (full-precision positions, nm) and ``metadata.json`` into ``folder`` atomically.
 
         Everything is written into a temporary sibling folder first and renamed into place, so a
         failure never leaves a half-written folder.
@@ -68,6 +69,7 @@ class BuiltSystem:
         tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.tmp-", dir=folder.parent))
         try:
             (tmp / "system.xml").write_text(openmm.XmlSerializer.serialize(self.system))
+            np.save(tmp / "start-positions.npy", np.asarray(self.positions, dtype=np.float64))
             with open(tmp / "start.pdb", "w") as fh:
                 app.PDBFile.writeFile(self.topology, self.positions * unit.nanometer, fh, keepIds=True)
             meta = dict(self.metadata, region=list(self.region), treatment=self.treatment)
@@ -85,7 +87,9 @@ class BuiltSystem:
         meta = json.loads((folder / "metadata.json").read_text())
         system = openmm.XmlSerializer.deserialize((folder / "system.xml").read_text())
         pdb = app.PDBFile(str(folder / "start.pdb"))
-        pos = np.array(pdb.getPositions(asNumpy=True).value_in_unit(unit.nanometer))
+        npy = folder / "start-positions.npy"
+        pos = (np.load(npy) if npy.is_file()
+               else np.array(pdb.getPositions(asNumpy=True).value_in_unit(unit.nanometer)))
         pdb.topology.setPeriodicBoxVectors(system.getDefaultPeriodicBoxVectors())
         return cls(system=system, topology=pdb.topology, positions=pos, region=tuple(meta["region"]),
                    treatment=meta["treatment"], metadata=meta)

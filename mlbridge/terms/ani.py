@@ -387,9 +387,7 @@ class AniTerm(RegionTerm):
             tc, tj, tk = (np.concatenate(v) for v in (tc, tj, tk))
         else:
             tc = tj = tk = np.zeros(0, dtype=np.int64)
-        pa, pb = pair_id[tc, tj], pair_id[tc, tk]
-        # stored pair vector is x[pj] - x[pi]; the leg from c is +v if c is that pair's pi
-        sign = np.where(pi[pa] == tc, 1.0, -1.0) * np.where(pi[pb] == tc, 1.0, -1.0)
+        pa, pb = pair_id[tc, tj], pair_id[tc, tk]  # the pairs of the two legs
         pair_c = self._pair_of_compact_species[sc[tj], sc[tk]]
         active = sorted(set(pair_c.tolist()))  # compact pair ids with at least one triple
         remap = -np.ones(len(self._pairs_present), dtype=np.int64)
@@ -409,48 +407,104 @@ class AniTerm(RegionTerm):
         self._pi, self._pj = L(pi), L(pj)
         self._rad_index = L(rad_index)
         self._pa, self._pb = L(pa), L(pb)
-        self._sign = torch.tensor(sign, dtype=self.dtype).unsqueeze(1)
+        self._tc, self._tj, self._tk = L(tc), L(tj), L(tk)
+        self._force_index_pairs = L(np.concatenate([pj, pi]))
+        self._force_index = L(np.concatenate([pj, pi, tj, tk, tc]))
         self._ang_index = L(ang_index)
         self._n_act = n_act
         self._ref = x.copy()
         self.n_rebuilds += 1
 
-    # -- AEV -------------------------------------------------------------------------------------
-    def _aev(self, xt: torch.Tensor) -> torch.Tensor:
-        """Compact AEVs (n, F'), rows ordered by element, of coordinates xt (n, 3) angstrom."""
+    # -- AEV, forward and hand-written backward --------------------------------------------------
+    def _aev_forward(self, xt: torch.Tensor):
+        """Compact AEVs (n, F'), rows ordered by element, of xt (n, 3) angstrom, and what the
+        backward needs."""
         Ep = self.n_present
-        rows = self.n_atoms
-        v = xt.index_select(0, self._pj) - xt.index_select(0, self._pi)  # (P, 3)
+        n = self.n_atoms
+        v = xt.index_select(0, self._pj) - xt.index_select(0, self._pi)  # (P, 3), i -> j
         r = torch.linalg.vector_norm(v, dim=1)  # (P,)
-        pi_over = math.pi / self.rc_r
-        fc = torch.where(r < self.rc_r, 0.5 * torch.cos(r * pi_over) + 0.5, torch.zeros_like(r))
-        rad = (0.25 * torch.exp(-self.eta_r * (r.unsqueeze(1) - self.shf_r) ** 2)) * fc.unsqueeze(1)
-        radial = xt.new_zeros((rows * Ep, self.n_rad))
-        radial = radial.index_add(0, self._rad_index, torch.cat([rad, rad]))
-        radial = radial.view(rows, Ep * self.n_rad)
+        w = math.pi / self.rc_r
+        inside = r < self.rc_r
+        zero = torch.zeros_like(r)
+        fc = torch.where(inside, 0.5 * torch.cos(r * w) + 0.5, zero)
+        dfc = torch.where(inside, (-0.5 * w) * torch.sin(r * w), zero)
+        d = r.unsqueeze(1) - self.shf_r  # (P, R)
+        ex = 0.25 * torch.exp(-self.eta_r * d * d)
+        rad = ex * fc.unsqueeze(1)
+        radial = xt.new_zeros((n * Ep, self.n_rad)).index_add_(0, self._rad_index,
+                                                               torch.cat([rad, rad]))
+        radial = radial.view(n, Ep * self.n_rad)
+        cache = {"v": v, "r": r, "d": d, "ex": ex, "fc": fc, "dfc": dfc}
         if self._n_act == 0:
-            return radial
-        va = v.index_select(0, self._pa)
-        vb = v.index_select(0, self._pb)
+            return radial, cache
+        # angular: triple (c; j, k), legs a = x_j - x_c, b = x_k - x_c
+        xc = xt.index_select(0, self._tc)
+        va = xt.index_select(0, self._tj) - xc
+        vb = xt.index_select(0, self._tk) - xc
         ra = r.index_select(0, self._pa)
         rb = r.index_select(0, self._pb)
-        fca_pair = torch.where(r < self.rc_a, 0.5 * torch.cos(r * (math.pi / self.rc_a)) + 0.5,
-                               torch.zeros_like(r))
-        fcab = fca_pair.index_select(0, self._pa) * fca_pair.index_select(0, self._pb)
-        rab = ra * rb
-        cos_t = (va * vb).sum(dim=1, keepdim=True) * self._sign / torch.clamp(
-            rab, min=1e-10).unsqueeze(1)
-        c95 = 0.95 * cos_t
-        s95 = torch.sqrt(1.0 - c95 * c95)
-        # cos(acos(c95) - theta_l) = c95 cos(theta_l) + sqrt(1 - c95^2) sin(theta_l)
-        ang = 2.0 * ((1.0 + c95 * self.cos_sec + s95 * self.sin_sec) * 0.5) ** self.zeta  # (T, L)
-        mean_r = 0.5 * (ra + rb)
-        radA = torch.exp(-self.eta_a * (mean_r.unsqueeze(1) - self.shf_a) ** 2) * fcab.unsqueeze(1)
-        terms = (radA.unsqueeze(2) * ang.unsqueeze(1)).reshape(-1, self.n_ang)
-        angular = xt.new_zeros((rows * self._n_act, self.n_ang))
-        angular = angular.index_add(0, self._ang_index, terms)
-        angular = angular.view(rows, self._n_act * self.n_ang)
-        return torch.cat([radial, angular], dim=1)
+        wa = math.pi / self.rc_a
+        inside_a = r < self.rc_a
+        fca_p = torch.where(inside_a, 0.5 * torch.cos(r * wa) + 0.5, zero)
+        dfca_p = torch.where(inside_a, (-0.5 * wa) * torch.sin(r * wa), zero)
+        fca, fcb = fca_p.index_select(0, self._pa), fca_p.index_select(0, self._pb)
+        dfca, dfcb = dfca_p.index_select(0, self._pa), dfca_p.index_select(0, self._pb)
+        inv = 1.0 / torch.clamp(ra * rb, min=1e-10)
+        cos_t = (va * vb).sum(dim=1) * inv
+        x95 = (0.95 * cos_t).unsqueeze(1)  # torchani/NeuroChem: theta = acos(0.95 cos)
+        s95 = torch.sqrt(1.0 - x95 * x95)
+        # cos(acos(x) - theta_l) = x cos(theta_l) + sqrt(1 - x^2) sin(theta_l)
+        q = 0.5 * (1.0 + x95 * self.cos_sec + s95 * self.sin_sec)  # (T, L)
+        qz1 = q ** (self.zeta - 1.0)
+        A = 2.0 * q * qz1
+        fcab = fca * fcb
+        dm = (0.5 * (ra + rb)).unsqueeze(1) - self.shf_a  # (T, K)
+        exa = torch.exp(-self.eta_a * dm * dm)
+        Rk = exa * fcab.unsqueeze(1)
+        terms = (Rk.unsqueeze(2) * A.unsqueeze(1)).reshape(-1, self.n_ang)  # (T, K*L)
+        angular = xt.new_zeros((n * self._n_act, self.n_ang)).index_add_(0, self._ang_index,
+                                                                         terms)
+        angular = angular.view(n, self._n_act * self.n_ang)
+        cache.update(va=va, vb=vb, ra=ra, rb=rb, fca=fca, fcb=fcb, dfca=dfca, dfcb=dfcb, inv=inv,
+                     cos_t=cos_t, x95=x95, s95=s95, qz1=qz1, A=A, fcab=fcab, dm=dm, exa=exa, Rk=Rk)
+        return torch.cat([radial, angular], dim=1), cache
+
+    def _aev_backward(self, c: dict, gx: torch.Tensor) -> torch.Tensor:
+        """dE/dx (n, 3) from dE/dAEV gx (n, F') by the chain rule written out."""
+        Ep, n = self.n_present, self.n_atoms
+        nr = Ep * self.n_rad
+        P = c["r"].shape[0]
+        g_rad = gx[:, :nr].reshape(n * Ep, self.n_rad).index_select(0, self._rad_index)
+        g_rad = g_rad[:P] + g_rad[P:]  # (P, R): both atoms of a pair see the same term
+        # d rad / d r = 0.25 exp(-eta d^2) (-2 eta d fc + fc')
+        drad = c["ex"] * (c["dfc"].unsqueeze(1) - (2.0 * self.eta_r) * c["d"] * c["fc"].unsqueeze(1))
+        dedr = (g_rad * drad).sum(dim=1)
+        g_pair = c["v"] * (dedr / c["r"]).unsqueeze(1)  # dE/dv, v = x_j - x_i
+        if self._n_act == 0:
+            idx = self._force_index_pairs
+            vals = torch.cat([g_pair, -g_pair])
+            return g_pair.new_zeros((n, 3)).index_add_(0, idx, vals)
+        K, L = len(self.shf_a), len(self.cos_sec)
+        gT = gx[:, nr:].reshape(n * self._n_act, K, L).index_select(0, self._ang_index)  # (T,K,L)
+        Rk, A = c["Rk"], c["A"]
+        gA = torch.bmm(Rk.unsqueeze(1), gT).squeeze(1)  # (T, L)  sum_k g R_k
+        gR = torch.bmm(gT, A.unsqueeze(2)).squeeze(2)  # (T, K)  sum_l g A_l
+        # dA_l/dx = zeta q^(zeta-1) (cos_l - x/s sin_l)
+        x95, s95 = c["x95"], c["s95"]
+        dAdx = self.zeta * c["qz1"] * (self.cos_sec - (x95 / s95) * self.sin_sec)
+        dedcos = 0.95 * (gA * dAdx).sum(dim=1)  # (T,)
+        gex = gR * c["exa"]
+        q1 = gex.sum(dim=1)
+        q2 = (gex * c["dm"]).sum(dim=1)
+        common = -self.eta_a * q2 * c["fcab"]  # d(mean r)/d ra = 1/2 absorbed: -2 eta dm / 2
+        dedra = common + q1 * c["dfca"] * c["fcb"]
+        dedrb = common + q1 * c["fca"] * c["dfcb"]
+        va, vb, ra, rb, inv, cos_t = c["va"], c["vb"], c["ra"], c["rb"], c["inv"], c["cos_t"]
+        # d cos / d va = vb/(ra rb) - cos va/ra^2
+        ga = (dedcos * inv).unsqueeze(1) * vb + ((dedra - dedcos * cos_t / ra) / ra).unsqueeze(1) * va
+        gb = (dedcos * inv).unsqueeze(1) * va + ((dedrb - dedcos * cos_t / rb) / rb).unsqueeze(1) * vb
+        vals = torch.cat([g_pair, -g_pair, ga, gb, -(ga + gb)])
+        return va.new_zeros((n, 3)).index_add_(0, self._force_index, vals)
 
     # -- evaluation ------------------------------------------------------------------------------
     def energy_forces(self, region_nm, box_nm=None, environment_nm=None) -> TermResult:
@@ -459,19 +513,17 @@ class AniTerm(RegionTerm):
         rebuilt = self._needs_rebuild(x)
         if rebuilt:
             self._rebuild(x)
-        xt = torch.from_numpy(x).to(self.dtype).requires_grad_(True)
-        with torch.enable_grad():
-            aev = self._aev(xt)
+        xt = torch.from_numpy(x).to(self.dtype)
         with torch.no_grad():
-            x_aev = aev.detach()
+            aev, cache = self._aev_forward(xt)
             member_nn = 0.0
             grads = []
             for net, (lo, hi) in zip(self.nets, self._blocks):
-                e_m, g = net.energies_and_input_grad(x_aev[lo:hi])
+                e_m, g = net.energies_and_input_grad(aev[lo:hi])
                 member_nn = member_nn + e_m
                 grads.append(g)
             gx = torch.cat(grads) if len(grads) > 1 else grads[0]
-        (grad,) = torch.autograd.grad(aev, xt, gx, retain_graph=False)
+            grad = self._aev_backward(cache, gx)
         member_ha = member_nn.double().numpy() + self.self_energy_sum
         energy_ha = float(member_ha.mean())
         forces = -grad.double().numpy() * _HA_A_TO_KJMOL_NM

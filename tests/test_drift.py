@@ -1,0 +1,75 @@
+"""Drift fit on synthetic data, and a classical water box at 1 fs through the report's function."""
+import numpy as np
+import openmm
+import openmm.app as app
+import openmm.unit as unit
+import pytest
+
+from mlbridge.build import BuiltSystem
+from mlbridge.drift import (DRIFT_THRESHOLD_KT_PER_NS_PER_DOF, EnergyTraceReporter, check_setup,
+                            degrees_of_freedom, fit_drift)
+from mlbridge.units import kT_kjmol
+
+
+def test_fit_recovers_known_slope():
+    rng = np.random.default_rng(7)
+    t_ps = np.linspace(0, 50, 501)
+    slope = 200.0  # kJ/mol/ns
+    kin = 5000 + rng.normal(0, 30, t_ps.size)
+    e = -1000.0 + slope * t_ps * 1e-3 + rng.normal(0, 0.5, t_ps.size)
+    fit = fit_drift(t_ps, e, n_dof=1000, temperature_k=300, kinetic_kjmol=kin)
+    assert fit.slope_kjmol_per_ns == pytest.approx(slope, abs=4 * fit.slope_stderr_kjmol_per_ns)
+    assert fit.slope_stderr_kjmol_per_ns < 2.0  # analytic: 0.5 / sqrt(501 * 0.05**2 / 12) = 1.55
+    assert fit.slope_kjmol_per_ns_per_dof == pytest.approx(fit.slope_kjmol_per_ns / 1000)
+    assert fit.slope_kT_per_ns_per_dof == pytest.approx(fit.slope_kjmol_per_ns / 1000 / kT_kjmol(300))
+    assert fit.fluctuation_ratio == pytest.approx(0.5 / 30, rel=0.2)
+    assert fit.duration_ps == pytest.approx(50)
+    with pytest.raises(ValueError, match="at least 3"):
+        fit_drift([0, 1], [0, 1], n_dof=1, temperature_k=300)
+
+
+def water_box(n_side=2.4):
+    ff = app.ForceField("amber14/tip3p.xml")
+    m = app.Modeller(app.Topology(), [] * unit.nanometer)
+    m.addSolvent(ff, boxSize=openmm.Vec3(n_side, n_side, n_side) * unit.nanometer)
+    system = ff.createSystem(m.topology, nonbondedMethod=app.PME, nonbondedCutoff=0.9 * unit.nanometer,
+                             constraints=app.HBonds, rigidWater=True, ewaldErrorTolerance=5e-4)
+    pos = np.array(m.getPositions().value_in_unit(unit.nanometer))
+    return BuiltSystem(system=system, topology=m.topology, positions=pos, region=(), treatment="water-box",
+                       metadata={"treatment_summary": "TIP3P water box"})
+
+
+def test_classical_water_box_at_1fs_passes_threshold():
+    """A TIP3P/PME box at 1 fs (rigid water) must conserve energy: the same check the report runs."""
+    box = water_box()
+    res = check_setup(box, dt_fs=1.0, equilibration_ps=1.0, nve_ps=6.0, threads=2, progress=False)
+    assert res.fit.n_dof == degrees_of_freedom(box.system)
+    assert res.passed, res.warnings
+    assert abs(res.fit.slope_kT_per_ns_per_dof) < DRIFT_THRESHOLD_KT_PER_NS_PER_DOF
+    assert res.fit.fluctuation_ratio < 0.05
+    assert res.speed.ms_per_step > 0 and res.speed.ns_per_day > 0
+
+
+def test_drifting_setup_gets_a_plain_warning():
+    """A 4 fs step with flexible O-H... here: rigid water but a too-long step drifts."""
+    box = water_box()
+    res = check_setup(box, dt_fs=5.0, equilibration_ps=0.5, nve_ps=3.0, threads=2, progress=False,
+                      threshold_kT_per_ns_per_dof=1e-4)
+    assert not res.passed
+    assert any("does not conserve energy" in w for w in res.warnings)
+
+
+def test_reporter_works_in_a_users_simulation():
+    box = water_box(2.0)
+    sim = app.Simulation(box.topology, box.system, openmm.VerletIntegrator(0.001),
+                         openmm.Platform.getPlatformByName("CPU"), {"Threads": "2"})
+    sim.context.setPositions(box.positions * unit.nanometer)
+    sim.minimizeEnergy(maxIterations=100)
+    sim.context.setVelocitiesToTemperature(300 * unit.kelvin, 1)
+    rep = EnergyTraceReporter(10)
+    sim.reporters.append(rep)
+    sim.step(200)
+    tab = rep.table()
+    assert len(tab["Time (ps)"]) == 20 and "Total Energy (kJ/mole)" in tab
+    fit = rep.fit(n_dof=degrees_of_freedom(box.system), temperature_k=300)
+    assert np.isfinite(fit.slope_kjmol_per_ns)
