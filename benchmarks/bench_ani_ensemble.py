@@ -4,8 +4,8 @@ Acetaminophen (20 atoms, RDKit ETKDG seed 42 + MMFF). For each thread count (1, 
 (float32, float64) the two are timed side by side in one process, alternating one stock call and
 one of ours, median of N calls after a warm-up; the stock call is torchani's ensemble model
 forward + ``torch.autograd.grad`` for the forces, converted to kJ/mol and kJ/mol/nm the same way.
-A last line times ours on moving coordinates (a random walk of 0.0005 nm per call and atom
-component, about thermal motion per 1 fs step), so neighbour-list rebuilds are included.
+A last line times ours on moving coordinates (a random walk of 0.0015 nm per call and atom
+component, faster than a ligand's net motion in MD), so neighbour-list rebuilds are included.
 
     .venv/bin/python benchmarks/bench_ani_ensemble.py [--calls 200] [--model ani1x]
 
@@ -91,7 +91,7 @@ def main():
     rng = np.random.default_rng(0)
     xs = [x]
     for _ in range(args.calls + 20):
-        xs.append(xs[-1] + rng.normal(scale=0.0005, size=x.shape))
+        xs.append(xs[-1] + rng.normal(scale=0.0015, size=x.shape))
     for y in xs[:20]:
         term.energy_forces(y)
     n0 = term.n_rebuilds

@@ -266,7 +266,7 @@ def fetch(root: Optional[os.PathLike] = None, *, quiet: bool = False) -> Path:
 
 
 def fetch_ani2x(root: Optional[os.PathLike] = None, *, quiet: bool = False) -> Path:
-    """Get ANI-2x through torchani's own download (needs huggingface.co), copy it to the cache."""
+    """Get ANI-2x through torchani's own download (needs the internet), copy it to the cache."""
     dest_dir = model_dir(root) / "ani2x"
     dest = dest_dir / ANI2X_STATE_DICT
     if dest.is_file() and dest.stat().st_size > 0:
@@ -282,8 +282,9 @@ def fetch_ani2x(root: Optional[os.PathLike] = None, *, quiet: bool = False) -> P
         except Exception as exc:
             raise ModelUnavailableError(
                 f"torchani could not download ANI-2x ({type(exc).__name__}: {exc}); it needs "
-                f"huggingface.co. Alternatively set {ANI2X_DIR_ENV} to a folder holding "
-                f"{ANI2X_STATE_DICT} or a NeuroChem {INFO_FILES['ani2x']} tree.") from exc
+                f"the internet (huggingface.co or github.com). Alternatively set "
+                f"{ANI2X_DIR_ENV} to a folder holding {ANI2X_STATE_DICT} or a NeuroChem "
+                f"{INFO_FILES['ani2x']} tree.") from exc
     dest_dir.mkdir(parents=True, exist_ok=True)
     tmp = dest.with_suffix(".part")
     shutil.copyfile(cached, tmp)
@@ -302,7 +303,7 @@ def _unavailable(name: str, where: str, detail: str = "") -> ModelUnavailableErr
                f"    {FETCH_COMMAND}\n"
                f"or set {MODEL_DIR_ENV} to the folder where that command put them.")
     else:
-        how = (f"Get them with (needs huggingface.co):\n    {FETCH_ANI2X_COMMAND}\n"
+        how = (f"Get them with (needs the internet):\n    {FETCH_ANI2X_COMMAND}\n"
                f"or set {ANI2X_DIR_ENV} (or pass weights_dir=) to a folder holding "
                f"{ANI2X_STATE_DICT} or a NeuroChem {INFO_FILES['ani2x']} tree; offline, use "
                f"ani1x/ani1ccx (H, C, N, O) or the semi-empirical treatment 'xtb'.")
@@ -332,7 +333,8 @@ def locate(name: str, weights_dir: Optional[os.PathLike] = None) -> Path:
             problems += p
         where = weights_dir if weights_dir is not None else model_dir()
         n = len(problems)
-        return _raise(_unavailable(name, str(where), problems[0] + (f"; {n - 1} more" if n > 1 else "")))
+        detail = problems[0] + (f"; {n - 1} more" if n > 1 else "")
+        return _raise(_unavailable(name, str(where), detail))
     # ani2x
     folders = []
     if weights_dir is not None:
@@ -461,7 +463,12 @@ def load_parameters(name: str = "ani1x", *, weights_dir: Optional[os.PathLike] =
 
     Raises ModelUnavailableError naming the fetch command when they are missing.
     """
-    path = locate(name, weights_dir)
+    return load_path(name, locate(name, weights_dir))
+
+
+def load_path(name: str, path: os.PathLike) -> AniParameters:
+    """Read :class:`AniParameters` from a path :func:`locate` returned (``.info`` or ``.pt``)."""
+    path = Path(path)
     if path.suffix == ".info":
         return _load_neurochem(name, path)
     return parameters_from_torchani(_load_state_dict_model(path), name, str(path))
@@ -519,7 +526,7 @@ def main(argv=None) -> int:
         try:
             print(f"{m}: {locate(m)}")
         except ModelUnavailableError as exc:
-            print(f"{m}: unavailable ({str(exc).splitlines()[0]})")
+            print(f"{m}: unavailable. " + " ".join(str(exc).split()))
     return 0
 
 

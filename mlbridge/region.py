@@ -7,6 +7,8 @@ Mechanical embedding (DESIGN.md section 3): U = U_MM - U_MM^RR + U_region + U_la
 * every R-R pair of the NonbondedForce becomes an exception with zero chargeProd and epsilon, so
   OpenMM removes its direct and its PME reciprocal-space part (exceptions are subtracted from the
   reciprocal sum);
+* exceptions use periodic boundary conditions, so the subtracted reciprocal part of an excluded
+  pair is evaluated at its minimum-image distance even when the region arrives wrapped;
 * region-environment LJ and fixed-charge Coulomb stay; :func:`zero_region_charges` removes the
   latter where the QEq layer replaces it (LJ kept).
 
@@ -67,6 +69,10 @@ def remove_region_internal(system: openmm.System, region: Sequence[int]) -> dict
                 else:
                     force.setExceptionParameters(k, i, j, 0.0, 1.0, 0.0)
                 counts["nonbonded_pairs"] += 1
+            if force.usesPeriodicBoundaryConditions():
+                # PME subtracts the excluded pairs' reciprocal part at the exception's distance;
+                # with minimum-image exceptions that stays right when region atoms arrive wrapped.
+                force.setExceptionsUsePeriodicBoundaryConditions(True)
         elif isinstance(force, (openmm.CustomBondForce, openmm.CustomTorsionForce, openmm.CMAPTorsionForce,
                                 openmm.RBTorsionForce, openmm.CustomNonbondedForce, openmm.CustomAngleForce,
                                 openmm.CustomCompoundBondForce)):

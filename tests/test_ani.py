@@ -257,6 +257,36 @@ def test_moving_beyond_the_skin_rebuilds_and_still_agrees(acetaminophen, stock_m
 
 
 @needs_weights
+def test_terms_sharing_packed_weights_stay_independent(acetaminophen, stock_models):
+    """Two ligands, one model: packed networks are shared, the selected AEV columns are not."""
+    region_a, xa = acetaminophen
+    region_b, xb = _mol("OCCO", seed=4)  # no N: fewer AEV columns
+    ta = ani.make_term(region_a, precision="float64")
+    tb = ani.make_term(region_b, precision="float64")
+    stock = stock_models("ani1x", "float64")
+    for _ in range(2):
+        for term, region, x in ((ta, region_a, xa), (tb, region_b, xb)):
+            e_ref, f_ref, _ = _stock(stock, region, x)
+            _assert_agree(term.energy_forces(x), e_ref, f_ref, "float64")
+    assert ta.nets[0] is tb.nets[0]  # the H networks, packed once
+    assert ta.n_aev_columns != tb.n_aev_columns
+
+
+@needs_weights
+def test_tiny_regions_without_angular_triples(stock_models):
+    """H2 has no angular triple (radial-only path); water has one triple per atom."""
+    stock = stock_models("ani1x", "float64")
+    h2 = RegionInfo(symbols=("H", "H"), atomic_numbers=(1, 1), net_charge=0)
+    water = RegionInfo(symbols=("O", "H", "H"), atomic_numbers=(8, 1, 1), net_charge=0)
+    x_h2 = np.array([[0.0, 0.0, 0.0], [0.08, 0.0, 0.0]])
+    x_w = np.array([[0.0, 0.0, 0.0], [0.0957, 0.0, 0.0], [-0.024, 0.0927, 0.0]])
+    for region, x in ((h2, x_h2), (water, x_w)):
+        term = ani.make_term(region, precision="float64")
+        e_ref, f_ref, _ = _stock(stock, region, x)
+        _assert_agree(term.energy_forces(x), e_ref, f_ref, "float64")
+
+
+@needs_weights
 def test_skin_does_not_change_results(acetaminophen):
     region, x = acetaminophen
     x = _distorted(x, 0.004, seed=5)
@@ -295,7 +325,7 @@ def test_ani2x_path_with_a_local_state_dict(tmp_path, monkeypatch):
     _assert_agree(res, e_ref, f_ref, "float64")
     np.testing.assert_allclose(res.extras["member_energies_kjmol"], members, rtol=1e-6)
     # the 1008-wide ANI-2x AEV shrinks to the blocks this molecule can populate
-    assert term.nets[0].w1.shape[0] < 1008
+    assert term.n_aev_columns < 1008
 
 
 # ------------------------------------------------------------------------------------------------

@@ -35,12 +35,16 @@ How it is fast (and still exactly the same function as torchani's)
 Measured against torchani's stock ensemble (energy + forces by autograd), see
 ``benchmarks/bench_ani_ensemble.py``:
 
-- **Members batched.** The 8 members x E elements networks run as one zero-padded batched matmul
-  per layer (first layer: the 8 members' weights concatenated, so the shared AEV is read once),
-  instead of 32 small networks one after the other. Padding rows/units are zero and contribute
-  exactly nothing.
-- **Hand-written network backward.** dE/dG uses CELU'(z) = 1 + 10 min(celu(z), 0) (alpha = 0.1)
-  and the transposed weights; no autograd graph over the networks.
+- **Members batched.** Per element, the first layers of the 8 members sit side by side in one
+  (F, 8 h1) matrix, so the element's AEVs meet all members in one matmul; the deeper layers are
+  one batched matmul over the members (narrower members zero-padded; padding units contribute
+  exactly zero). That is 4 matmuls per element instead of 32 networks one after the other. On
+  this AMD/MKL machine the matmuls are compute-bound for these few-row inputs, so atoms are not
+  padded across elements (a 32-network padded ``baddbmm`` measured slower here).
+- **Hand-written backward, no autograd.** The networks' backward uses
+  CELU'(z) = 1 + 10 min(celu(z), 0) (alpha = 0.1) and the transposed weights; the AEV's
+  derivatives (radial, cosine, mean-distance and cutoff factors) are written out and scattered
+  to the atoms with one ``index_add_``. No graph is built or kept between steps.
 - **Neighbour list with a skin.** Pairs within R_c^R + skin and angular triples within
   R_c^A + skin are listed once (numpy) and re-used until an atom has moved, relative to the mean
   displacement (so translating the molecule costs nothing), by more than skin/2 since the list
@@ -50,14 +54,15 @@ Measured against torchani's stock ensemble (energy + forces by autograd), see
   of element pairs that have no triple in the current list, are identically zero until the next
   rebuild; they and their first-layer weight rows are left out (this matters most for ANI-2x,
   whose 1008-wide AEV shrinks to 384 columns for an H/C/N/O ligand).
-- **Species built once**, weights packed once per (model, elements, precision) and cached; the
-  AEV's own backward uses ``torch.autograd.grad`` with no graph retained.
+- **Built once**: species and element blocks per term; scatter indices per list rebuild; packed
+  weights per (parameters, element, precision), shared between terms.
 
-Precision: ``precision="float32"`` (default) or ``"float64"``. float32 is the default because it is
-what torchani runs and it is measured faster (the networks are bound by reading the weights,
-twice the bytes in float64); its energies agree with the float64 evaluation to ~1e-7 relative. The
-self energies are always summed in float64. Energy drift in NVE is checked by the lead
-separately; choose float64 if that check asks for it.
+Precision: ``precision="float32"`` (default) or ``"float64"``. float32 is the default because it
+measured faster: 9.7 ms vs 16.8 ms per call for acetaminophen on 1 thread (the networks' matmuls,
+most of the cost, run at about half the rate in float64), and it is what torchani itself runs.
+Its numbers are close to float64: energy 6e-5 kJ/mol apart (the self energies, -515 hartree of the
+total, are summed in float64 in both modes; the networks' part is float32), forces 1.6e-5 of
+max |F|. NVE drift is measured separately by the lead; if it asks for float64, set it here.
 
 ``extras`` of each result:
 - ``member_energies_kjmol``: list of the 8 members' total energies, kJ/mol;
@@ -175,15 +180,17 @@ def _weights_key(model, weights_dir):
 
 
 @functools.lru_cache(maxsize=8)
-def _load_by_key(model, path, _mtime, weights_dir):
+def _load_by_key(model, path, _mtime):
     from .. import models
 
-    return models.load_parameters(model, weights_dir=weights_dir)
+    return models.load_path(model, path)
 
 
 def _load_parameters_cached(model, weights_dir=None):
+    """Parameters read once per (model, file, modification time); terms rebuilt after
+    unpickling reuse them and their packed networks."""
     path, mtime = _weights_key(model, weights_dir)  # raises ModelUnavailableError
-    return _load_by_key(model, path, mtime, None if weights_dir is None else str(weights_dir))
+    return _load_by_key(model, path, mtime)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -225,24 +232,21 @@ class _ElementNetworks:
         self.bs = [t(b) for b in bs]
         self.wts = [w.transpose(1, 2) for w in self.ws]
         self.n_members, self.h1 = M, h1
-        self.columns = None
-        self.w1 = self.w1t = None
 
-    def select_columns(self, columns: torch.Tensor) -> None:
-        """Keep only these AEV columns (rows of the first layer); the others are zero."""
-        if self.columns is not None and torch.equal(self.columns, columns):
-            return
-        self.columns = columns
-        self.w1 = self.w1_full.index_select(0, columns).contiguous()
-        self.w1t = self.w1.t()
+    def first_layer(self, columns: torch.Tensor):
+        """First-layer weights restricted to these AEV columns (the others are zero), and their
+        transpose. A new tensor: the packed networks are shared between terms."""
+        w1 = self.w1_full.index_select(0, columns).contiguous()
+        return w1, w1.t()
 
-    def energies_and_input_grad(self, x):
-        """x: (n, F') AEVs of this element's atoms. Returns the members' summed NN energies (M,)
-        and d(mean_m E_m)/dx (n, F'), by a hand-written backward."""
+    def energies_and_input_grad(self, x, w1, w1t):
+        """x: (n, F') AEVs of this element's atoms; w1, w1t from :meth:`first_layer`. Returns
+        the members' summed NN energies (M,) and d(mean_m E_m)/dx (n, F'), by a hand-written
+        backward."""
         n = x.shape[0]
         M, h1 = self.n_members, self.h1
         celu = torch.nn.functional.celu
-        a = celu(torch.addmm(self.b1, x, self.w1), alpha=0.1)  # (n, M*h1)
+        a = celu(torch.addmm(self.b1, x, w1), alpha=0.1)  # (n, M*h1)
         a = a.view(n, M, h1).transpose(0, 1)  # (M, n, h1)
         acts = [a]
         last = len(self.ws) - 1
@@ -259,16 +263,16 @@ class _ElementNetworks:
             if k > 0:
                 g = torch.bmm(g, self.wts[k - 1])
         g = g.transpose(0, 1).reshape(n, M * h1)
-        return member, torch.mm(g, self.w1t)
+        return member, torch.mm(g, w1t)
 
 
-@functools.lru_cache(maxsize=8)
-def _packed(params_id, element, dtype_name):
-    params = _PARAMS_BY_ID[params_id]
-    return _ElementNetworks(params, element, _DTYPES[dtype_name])
-
-
-_PARAMS_BY_ID: dict = {}
+def _packed(params, element, precision):
+    """Packed networks of one element, cached on the parameters object (built once)."""
+    cache = params.__dict__.setdefault("_mlbridge_packed", {})
+    key = (element, precision)
+    if key not in cache:
+        cache[key] = _ElementNetworks(params, element, _DTYPES[precision])
+    return cache[key]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -314,8 +318,6 @@ class AniTerm(RegionTerm):
         iu = np.triu_indices(S)
         triu[iu] = np.arange(len(iu[0]))
         triu[iu[1], iu[0]] = np.arange(len(iu[0]))
-        self._triu_full = triu
-        self._present = present
         # compact pair id among present elements (ordered by the model's pair id)
         pairs_present = sorted({int(triu[a, b]) for a in present for b in present})
         self._pair_compact = {pid: c for c, pid in enumerate(pairs_present)}
@@ -342,9 +344,8 @@ class AniTerm(RegionTerm):
         self.sin_sec = torch.tensor(np.sin(sections), dtype=dt)
         self.self_energy_sum = float(sum(p.self_energies[s] for s in region.symbols))  # hartree
         # networks (cached across terms built from the same parameters)
-        _PARAMS_BY_ID[id(p)] = p
-        self._params = p  # keep alive so id() stays valid
-        self.nets = [_packed(id(p), e, precision) for e in elements]
+        self.nets = [_packed(p, e, precision) for e in elements]
+        self._w1 = None  # per-term first layers for the current AEV columns
         self.n_members = self.nets[0].n_members
         if any(net.n_members != self.n_members for net in self.nets):
             raise ValueError("all elements must have the same ensemble size")
@@ -401,8 +402,9 @@ class AniTerm(RegionTerm):
             pid = self._pairs_present[c]
             cols.append(self._ang_col0 + pid * self.n_ang + np.arange(self.n_ang))
         columns = torch.from_numpy(np.concatenate(cols))
-        for net in self.nets:
-            net.select_columns(columns)
+        if self._w1 is None or not torch.equal(self._columns, columns):
+            self._columns = columns
+            self._w1 = [net.first_layer(columns) for net in self.nets]
         L = torch.from_numpy
         self._pi, self._pj = L(pi), L(pj)
         self._rad_index = L(rad_index)
@@ -518,8 +520,8 @@ class AniTerm(RegionTerm):
             aev, cache = self._aev_forward(xt)
             member_nn = 0.0
             grads = []
-            for net, (lo, hi) in zip(self.nets, self._blocks):
-                e_m, g = net.energies_and_input_grad(aev[lo:hi])
+            for net, (w1, w1t), (lo, hi) in zip(self.nets, self._w1, self._blocks):
+                e_m, g = net.energies_and_input_grad(aev[lo:hi], w1, w1t)
                 member_nn = member_nn + e_m
                 grads.append(g)
             gx = torch.cat(grads) if len(grads) > 1 else grads[0]
@@ -537,6 +539,11 @@ class AniTerm(RegionTerm):
         }
         return TermResult(energy=energy_ha * units.HARTREE_KJMOL, region_forces=forces,
                           extras=extras)
+
+    @property
+    def n_aev_columns(self) -> int:
+        """AEV columns evaluated (of the model's full width); set by the last neighbour list."""
+        return 0 if self._w1 is None else int(self._columns.numel())
 
     def describe(self):
         d = super().describe()
