@@ -8,6 +8,7 @@ import pytest
 from mlbridge.build import BuiltSystem
 from mlbridge.drift import (DRIFT_THRESHOLD_KT_PER_NS_PER_DOF, EnergyTraceReporter, check_setup,
                             degrees_of_freedom, fit_drift)
+from mlbridge.solvate import system_options
 from mlbridge.units import kT_kjmol
 
 
@@ -32,8 +33,7 @@ def water_box(n_side=2.4):
     ff = app.ForceField("amber14/tip3p.xml")
     m = app.Modeller(app.Topology(), [] * unit.nanometer)
     m.addSolvent(ff, boxSize=openmm.Vec3(n_side, n_side, n_side) * unit.nanometer)
-    system = ff.createSystem(m.topology, nonbondedMethod=app.PME, nonbondedCutoff=0.9 * unit.nanometer,
-                             constraints=app.HBonds, rigidWater=True, ewaldErrorTolerance=5e-4)
+    system = ff.createSystem(m.topology, **system_options(0.9))  # the options mlbridge builds with
     pos = np.array(m.getPositions().value_in_unit(unit.nanometer))
     return BuiltSystem(system=system, topology=m.topology, positions=pos, region=(), treatment="water-box",
                        metadata={"treatment_summary": "TIP3P water box"})

@@ -51,7 +51,7 @@ def test_finite_differences_full_system(ml64, solvated):
     region atoms and on the water atoms nearest the ligand."""
     system = openmm.XmlSerializer.clone(ml64.system)
     # A hard real-space cutoff makes the energy jump when a pair crosses it (for PME at
-    # ewaldErrorTolerance 5e-4, ~1e-3 kJ/mol per pair: tens of kJ/mol/nm over a 2e-4 nm step).
+    # mlbridge's ewaldErrorTolerance, ~1e-4 kJ/mol per pair: tens of kJ/mol/nm over a 2e-4 nm step).
     # For the derivative test only, make the classical part smooth: LJ switch 0.8-0.9 nm and a
     # tight Ewald tolerance; the region force and the bookkeeping are unchanged.
     nb = next(f for f in system.getForces() if isinstance(f, openmm.NonbondedForce))
@@ -83,7 +83,7 @@ def test_bookkeeping_is_exact(ml64, solvated, demo_ligand, demo_params, tmp_path
     x = solvated.positions
     region = list(solvated.region)
     # PME's grid approximates the reciprocal part of the R-R pairs in U_classical but the
-    # excluded pairs' part is subtracted analytically in U_ml: at ewaldErrorTolerance 5e-4 that
+    # excluded pairs' part is subtracted analytically in U_ml: at ewaldErrorTolerance 1e-4 that
     # differs by ~1e-2 kJ/mol. Both systems get a tight tolerance for this test.
     def tight(system):
         s = openmm.XmlSerializer.clone(system)
@@ -117,7 +117,7 @@ def test_energy_invariant_across_periodic_boundary(ml64):
     # use minimum image): to 1e-4 kJ/mol on a ~1e6 kJ/mol total
     assert e_wrap == pytest.approx(e_shift, abs=1e-4)
     assert e_ani_wrap == pytest.approx(e_ani0, abs=1e-3)  # ANI is translation invariant
-    # translating everything changes only PME's grid interpolation error (tolerance 5e-4)
+    # translating everything changes only PME's grid interpolation error (tolerance 1e-4)
     assert e_shift == pytest.approx(e0, abs=0.1)
 
 
