@@ -154,6 +154,22 @@ def _term_options(treatment: Treatment, module: str, model: str, term_options: d
     return opts
 
 
+def _start_point(callable_: RegionTermForce, solv: SolvatedSystem, region: tuple, environment: tuple) -> dict:
+    """The term's energy (kJ/mol) and extras at the start structure, for the report."""
+    idx = list(region) + (list(environment) if callable_.uses_environment else [])
+    box = solv.box_vectors_nm() if solv.system.usesPeriodicBoundaryConditions() else None
+    result, _ = callable_.evaluate(np.asarray(solv.positions)[idx], box)
+    keep = {k: v for k, v in result.extras.items()
+            if k in ("charges", "charges_vacuum", "dipole_debye", "dipole_vacuum_debye",
+                     "ensemble_std_kjmol", "ensemble_std_per_atom_kjmol", "n_molecules_in_cutoff")}
+    return {"energy": float(result.energy), "extras": _plain(keep)}
+
+
+def _plain(d: dict) -> dict:
+    return {k: (np.asarray(v).tolist() if isinstance(v, (np.ndarray, list, tuple)) else
+                float(v) if isinstance(v, (np.floating, float)) else v) for k, v in d.items()}
+
+
 def apply_treatment(solv: SolvatedSystem, treatment: Union[str, Treatment], *, model: str = "ani1x",
                     term_options: Optional[dict] = None) -> BuiltSystem:
     """Apply a treatment to a classical solvated system (which is left unchanged)."""
@@ -199,8 +215,14 @@ def apply_treatment(solv: SolvatedSystem, treatment: Union[str, Treatment], *, m
         group = FIRST_TERM_GROUP + k
         add_region_force(system, callable_, region, environment, group, periodic)
         meta["force_groups"][str(group)] = term.name
+        start = _start_point(callable_, solv, region, environment)
         meta["terms"].append(dict(term.describe(), module=module, options=opts, group=group,
-                                  ledger_key=callable_.key))
+                                  ledger_key=callable_.key, start_energy_kjmol=start["energy"],
+                                  start_extras=start["extras"]))
+        if module == "d3":
+            meta["d3_start_energy_kjmol"] = start["energy"]
+        if module == "qeq":
+            meta["qeq_start"] = start["extras"]
     return BuiltSystem(system=system, topology=solv.topology, positions=np.array(solv.positions),
                        region=region, treatment=t.name, metadata=meta, solvated=solv)
 
