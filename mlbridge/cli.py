@@ -150,7 +150,7 @@ def _dispatch(a) -> int:
 
 def _print_checks(results, out) -> None:
     for r in results:
-        flag = "ok" if r.passed else "DRIFTS"
+        flag = {"pass": "ok", "drifts": "DRIFTS", "unresolved": "unresolved: run longer"}[r.status]
         print(f"  {r.treatment:12s} drift {r.fit.slope_kT_per_ns_per_dof:+.2e} kT/ns/DOF [{flag}]  "
               f"{r.speed.ms_per_step:7.2f} ms/step  {r.speed.ns_per_day:6.2f} ns/day")
     for r in results:

@@ -24,7 +24,7 @@ def _f(x, fmt=".3g") -> str:
 def check_section(r: CheckResult, plot_name: str = "") -> list:
     """Markdown lines for one treatment's check."""
     fit, sp = r.fit, r.speed
-    verdict = "PASS" if r.passed else "WARNING: drifts"
+    verdict = {"pass": "PASS", "drifts": "WARNING: drifts", "unresolved": "UNRESOLVED: run longer"}[r.status]
     lines = [
         f"## Treatment `{r.treatment}`: {verdict}",
         "",
@@ -88,9 +88,9 @@ def write_check_report(results: Sequence[CheckResult], folder, *, title: str = "
             lines += ["No warnings: every treatment stayed within the drift and uncertainty thresholds.", ""]
         meta = results[0].metadata if results else {}
         lines += ["System: " + ", ".join(f"{k} {meta[k]}" for k in ("ligand_smiles", "n_waters", "box_shape", "nonbonded", "constraints") if k in meta), ""]
-        lines += ["| treatment | drift (kT/ns/DOF) | passes | ms/step | ns/day |", "|---|---|---|---|---|"]
+        lines += ["| treatment | drift (kT/ns/DOF) | verdict | ms/step | ns/day |", "|---|---|---|---|---|"]
         for r in results:
-            lines.append(f"| `{r.treatment}` | {_f(r.fit.slope_kT_per_ns_per_dof)} | {'yes' if r.passed else 'NO'} | {_f(r.speed.ms_per_step, '.2f')} | {_f(r.speed.ns_per_day, '.2f')} |")
+            lines.append(f"| `{r.treatment}` | {_f(r.fit.slope_kT_per_ns_per_dof)} | {r.status} | {_f(r.speed.ms_per_step, '.2f')} | {_f(r.speed.ns_per_day, '.2f')} |")
         lines.append("")
         for r in results:
             name = ""
