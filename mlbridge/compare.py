@@ -89,6 +89,7 @@ from .drift import DRIFT_THRESHOLD_KT_PER_NS_PER_DOF, _progress, check_setup, cp
 from .errors import MlbridgeError, OptionError
 from .solvate import SolvatedSystem
 from .treatments import TREATMENTS, get_treatment
+from .units import kT_kjmol
 
 __all__ = ["compare", "single_point", "sample_nvt", "structural_observables", "NOT_COMPARABLE",
            "TORSION_BINS", "RDF_BIN_NM", "RDF_R_MAX_NM"]
@@ -432,10 +433,20 @@ def structural_observables(sampling: Sampling, sites: Sites, start_positions_nm,
 # ---------------------------------------------------------------------------------------
 # the comparison
 # ---------------------------------------------------------------------------------------
+def _drift_status(r) -> str:
+    """"pass", "drifts" or "unresolved" (the check's verdict; older results: pass or drifts)."""
+    status = getattr(r, "status", None)
+    return status if status else ("pass" if r.passed else "drifts")
+
+
+_DRIFT_CELL = {"pass": "pass", "drifts": "**WARN: drifts**", "unresolved": "**WARN: unresolved, run longer**"}
+
+
 def _check_summary(r, has_qeq: bool) -> dict:
     sp = r.speed
     d = {
         "passed": bool(r.passed),
+        "drift_status": _drift_status(r),
         "drift_kjmol_per_ns": r.fit.slope_kjmol_per_ns,
         "drift_stderr_kjmol_per_ns": r.fit.slope_stderr_kjmol_per_ns,
         "drift_kT_per_ns_per_dof": r.fit.slope_kT_per_ns_per_dof,
@@ -631,7 +642,9 @@ def side_by_side_table(results, reference: str) -> list:
         lines.append(f"| {label} | " + " | ".join(cells) + " |")
 
     lines.append("| status | " + " | ".join(r.status if r.status == "ok" else f"**{r.status}**" for r in results) + " |")
-    row("drift (kT/ns/DOF)", lambda r: f"{_f(r.check.fit.slope_kT_per_ns_per_dof)} ({'pass' if r.check.passed else '**WARN**'})")
+    row("drift ± 2σ (kT/ns/DOF)", lambda r: f"{_f(r.check.fit.slope_kT_per_ns_per_dof)} "
+        f"± {_f(2 * r.check.fit.slope_stderr_kjmol_per_ns / r.check.fit.n_dof / kT_kjmol(r.check.temperature_k), '.2g')} "
+        f"({_DRIFT_CELL.get(_drift_status(r.check), _drift_status(r.check))})")
     row("ms/step", lambda r: _f(r.check.speed.ms_per_step, ".2f"))
     row("ns/day", lambda r: _f(r.check.speed.ns_per_day, ".2f"))
     row("classical part (ms/step)", lambda r: _f(r.check.speed.classical_ms_per_step, ".2f"))
@@ -708,6 +721,10 @@ def _write(out: Path, solv, sites: Sites, results, settings: dict, elapsed_s: fl
         }
         (tmp / "comparison.json").write_text(json.dumps(_strict(data), indent=2, default=_jsonable, allow_nan=False))
         (tmp / "comparison.md").write_text("\n".join(_markdown(solv, sites, results, settings, warnings, pngs)))
+        checks = [r.check for r in results if r.check is not None]
+        if checks:  # the per-treatment NVE check report (summary.json, report.md, energy PNGs)
+            from .report import write_check_report
+            write_check_report(checks, tmp / "check", title="mlbridge setup check: NVE drift and speed per treatment")
         replace_folder(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)

@@ -33,10 +33,12 @@ def available_treatments() -> list:
 
 
 def run_demo(out="demo-output", *, treatments=None, quick: bool = False, threads: int = 2) -> Path:
-    """Build the demo ligand in water and check each treatment; returns the report folder."""
-    from .drift import check_setup
-    from .report import write_check_report
-    from .cli import _print_checks
+    """Build the demo ligand in water and compare every treatment from that one start structure.
+
+    Writes ``<out>/comparison.md`` (+ json, PNGs) and ``<out>/check/`` (the NVE check report),
+    and the built systems under ``<out>/systems/<treatment>``. Returns the check folder.
+    """
+    from .compare import compare
     t0 = time.time()
     out = Path(out)
     lig = from_file(DEMO_LIGAND, name="LIG")
@@ -46,18 +48,23 @@ def run_demo(out="demo-output", *, treatments=None, quick: bool = False, threads
     print(f"solvated: {solv.water_count()} waters, box {solv.box_vectors_nm()[0][0]:.2f} nm, "
           f"{solv.n_atoms} atoms ({time.time() - t0:.0f} s)")
     names = treatments or available_treatments()
-    lengths = dict(equilibration_ps=0.1, nve_ps=0.2) if quick else dict(equilibration_ps=2.0, nve_ps=5.0)
-    results = []
+    lengths = (dict(run_ps=0.05, equilibration_ps=0.05, nve_ps=0.2, report_interval=5,
+                    sample_interval_steps=10, minimize_max_iterations=20) if quick else
+               dict(run_ps=1.0, equilibration_ps=0.5, nve_ps=2.0, report_interval=10,
+                    sample_interval_steps=20, minimize_max_iterations=100))
+    compare(solv, treatments=names, out=out, threads=threads, progress=not quick, **lengths)
     for name in names:
         try:
-            built = apply_treatment(solv, name)
-        except MlbridgeError as e:
-            print(f"  {name}: skipped: {e}")
-            continue
-        built.save(out / "systems" / name.replace("+", "_"))
-        results.append(check_setup(built, threads=threads, progress=not quick, **lengths))
-        print(f"  {name}: done ({time.time() - t0:.0f} s)")
-    write_check_report(results, out / "check", title="mlbridge demo: NVE drift and speed per treatment")
-    _print_checks(results, out / "check")
+            apply_treatment(solv, name).save(out / "systems" / name.replace("+", "_"))
+        except MlbridgeError:
+            pass
+    import json
+    summary = json.loads((out / "check" / "summary.json").read_text())
+    for c in summary["checks"]:
+        print(f"  {c['treatment']:12s} drift {c['fit']['slope_kT_per_ns_per_dof']:+.2e} kT/ns/DOF [{c['status']}]  "
+              f"{c['speed']['ms_per_step']:7.2f} ms/step  {c['speed']['ns_per_day']:6.2f} ns/day")
+    for w in summary["warnings"]:
+        print(f"WARNING: {w}")
+    print(f"comparison: {out / 'comparison.md'}\ncheck report: {out / 'check' / 'report.md'}")
     print(f"demo finished in {time.time() - t0:.0f} s")
     return out / "check"

@@ -198,11 +198,19 @@ class CheckResult:
         return d
 
 
+#: torch intra-op threads inside OpenMM runs. Measured on the 2-core development machine: with
+#: 2 torch threads beside OpenMM's 2 CPU-platform threads, a loaded machine made one ANI call
+#: take up to 780 ms instead of 12 ms (spinning thread pools competing); with 1 thread the cost
+#: is stable and at most ~15% slower on an idle machine.
+TORCH_THREADS = 1
+
+
 def set_threads(threads: int) -> None:
-    """Pin torch's intra-op threads (OpenMM's CPU platform gets the same number per context)."""
+    """Pin torch's intra-op threads to :data:`TORCH_THREADS` (at most ``threads``); OpenMM's CPU
+    platform gets ``threads`` per context."""
     try:
         import torch
-        torch.set_num_threads(int(threads))
+        torch.set_num_threads(max(1, min(int(threads), TORCH_THREADS)))
     except ImportError:  # pragma: no cover - torch is a dependency
         pass
 
@@ -360,7 +368,7 @@ def _summarise_extras(result: CheckResult, extras: dict, n_region: int, spread_t
                     f"({100 * np.mean(rho > spread_threshold):.0f}% of samples above {spread_threshold}): the "
                     "potential is extrapolating for these structures; treat its energies with caution."
                 )
-        if rows and "charges" in rows[0]:
+        if rows and "charges_vacuum" in rows[0]:  # QEq (xTB's Mulliken charges are not QEq)
             q = np.array([r["charges"] for r in rows], float)
             result.qeq = {
                 "samples": int(q.shape[0]),

@@ -51,6 +51,7 @@ def test_every_treatment_has_its_numbers(comparison, solvated):
                     "drift_kjmol_per_ns", "bridge_overhead_ms"):
             assert _finite(c[key]), (name, key, c[key])
         assert c["ms_per_step"] > 0
+        assert c["drift_status"] in ("pass", "drifts", "unresolved")
         sp = t["single_point"]
         assert _finite(sp["force_rms_diff_kjmol_nm"]) and _finite(sp["force_max_diff_kjmol_nm"])
         assert sp["force_max_diff_kjmol_nm"] >= sp["force_rms_diff_kjmol_nm"] >= 0
@@ -91,7 +92,7 @@ def test_report_states_what_it_compares(comparison):
         assert f"`{name}`" in md
     header = next(line for line in md.splitlines() if line.startswith("| quantity |"))
     assert header.count("|") == len(TREATED) + 2  # one column per treatment
-    for row in ("drift (kT/ns/DOF)", "ms/step", "ns/day", "bridge overhead", "force RMS diff",
+    for row in ("drift ± 2σ (kT/ns/DOF)", "ms/step", "ns/day", "bridge overhead", "force RMS diff",
                 "force max diff", "RMSD", "H-bonds", "ANI ensemble spread", "QEq dipole"):
         assert row in md, row
     for png in PNGS:
