@@ -15,10 +15,12 @@ import argparse
 import time
 
 import numpy as np
+import torch
 import openmm
 import openmm.unit as unit
 
-from mlbridge.build import apply_treatment
+from mlbridge.build import apply_treatment, region_info
+from mlbridge.region import bond_tree
 from mlbridge.demo import DEMO_LIGAND
 from mlbridge.drift import classical_part, set_threads
 from mlbridge.ligand import from_file
@@ -70,16 +72,17 @@ def main():
     ml = apply_treatment(solv, "ml")
     full = apply_treatment(solv, "ml+d3+qeq")
     print(f"demo system: {solv.n_atoms} atoms, {solv.water_count()} waters; {a.steps} NVE steps at 1 fs; "
-          f"{a.threads} threads (OpenMM CPU platform and torch)")
+          f"{a.threads} threads for OpenMM's CPU platform, torch {torch.get_num_threads()}")
     ms_cl, _, _ = run(classical_part(ml.system), ml.positions, a.threads, a.steps)
     ms_ml, frames, box = run(ml.system, ml.positions, a.threads, a.steps, keep_every=10)
     ms_full, _, _ = run(full.system, full.positions, a.threads, a.steps)
+    info = region_info(solv, with_environment=True)
+    tree = bond_tree(info.n_atoms, info.bonds)
     calls = {}
-    for f in (full.system.getForce(k) for k in range(full.system.getNumForces())):
-        if f.getName().startswith("mlbridge:"):
-            import pickle
-            c = pickle.loads(bytes(f.getPickledFunction()))
-            calls[c.module] = c
+    for t in full.metadata["terms"]:  # the same term specs the built system holds
+        c = RegionTermForce(t["module"], t["options"], info, tree)
+        c.uses_environment = c.term.uses_environment
+        calls[t["module"]] = c
     t_ani = term_alone_ms(calls["ani"], frames, region, environment, box)
     t_d3 = term_alone_ms(calls["d3"], frames, region, environment, box)
     t_qeq = term_alone_ms(calls["qeq"], frames, region, environment, box)
