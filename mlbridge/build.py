@@ -8,6 +8,7 @@ import json
 import os
 import shutil
 import tempfile
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Optional, Union
@@ -64,21 +65,14 @@ class BuiltSystem:
         Everything is written into a temporary sibling folder first and renamed into place, so a
         failure never leaves a half-written folder.
         """
-        folder = Path(folder)
-        folder.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.tmp-", dir=folder.parent))
-        try:
+        with atomic_folder(folder) as tmp:
             (tmp / "system.xml").write_text(openmm.XmlSerializer.serialize(self.system))
             np.save(tmp / "start-positions.npy", np.asarray(self.positions, dtype=np.float64))
             with open(tmp / "start.pdb", "w") as fh:
                 app.PDBFile.writeFile(self.topology, self.positions * unit.nanometer, fh, keepIds=True)
             meta = dict(self.metadata, region=list(self.region), treatment=self.treatment)
             (tmp / "metadata.json").write_text(json.dumps(meta, indent=2, default=_jsonable))
-            replace_folder(tmp, folder)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
-        return folder
+        return Path(folder)
 
     @classmethod
     def load(cls, folder: Union[str, os.PathLike]) -> "BuiltSystem":
@@ -103,6 +97,21 @@ def _jsonable(o):
     if isinstance(o, Path):
         return str(o)
     raise TypeError(f"cannot write {type(o).__name__} to JSON")
+
+
+@contextmanager
+def atomic_folder(folder: Union[str, os.PathLike]):
+    """Yield a temporary sibling folder to fill; on success it replaces ``folder`` (two renames),
+    on any error it is removed and ``folder`` is left as it was."""
+    folder = Path(folder)
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.tmp-", dir=folder.parent))
+    try:
+        yield tmp
+        replace_folder(tmp, folder)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
 
 
 def replace_folder(new: Path, target: Path) -> None:

@@ -3,12 +3,10 @@ from __future__ import annotations
 
 import json
 import math
-import shutil
-import tempfile
 from pathlib import Path
 from typing import Sequence
 
-from .build import _jsonable, replace_folder
+from .build import _jsonable, atomic_folder
 from .drift import CheckResult
 
 
@@ -76,10 +74,7 @@ CAUTIONS = [
 def write_check_report(results: Sequence[CheckResult], folder, *, title: str = "mlbridge setup check",
                        plots: bool = True) -> Path:
     """Write ``summary.json``, ``report.md`` and ``energy-<treatment>.png`` into ``folder``."""
-    folder = Path(folder)
-    folder.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.tmp-", dir=folder.parent))
-    try:
+    with atomic_folder(folder) as tmp:
         warnings = [w for r in results for w in r.warnings]
         lines = [f"# {title}", ""]
         if warnings:
@@ -103,8 +98,4 @@ def write_check_report(results: Sequence[CheckResult], folder, *, title: str = "
         (tmp / "report.md").write_text("\n".join(lines))
         summary = {"title": title, "warnings": warnings, "checks": [r.to_dict() for r in results]}
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, default=_jsonable))
-        replace_folder(tmp, folder)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return folder
+    return Path(folder)
