@@ -56,7 +56,9 @@ def test_drifting_setup_gets_a_plain_warning():
     res = check_setup(box, dt_fs=5.0, equilibration_ps=0.5, nve_ps=3.0, threads=2, progress=False,
                       threshold_kT_per_ns_per_dof=1e-4)
     assert not res.passed
-    assert any("does not conserve energy" in w for w in res.warnings)
+    # either verdict ("drifts", or "unresolved: run longer") is a plain warning naming the threshold
+    assert res.status in ("drifts", "unresolved")
+    assert any("above the threshold" in w for w in res.warnings)
 
 
 def test_reporter_works_in_a_users_simulation():
