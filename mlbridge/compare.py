@@ -71,8 +71,6 @@ from __future__ import annotations
 
 import json
 import math
-import shutil
-import tempfile
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -84,7 +82,7 @@ import openmm.unit as unit
 
 from . import __version__
 from . import observables as obs
-from .build import BuiltSystem, _jsonable, apply_treatment, replace_folder
+from .build import BuiltSystem, _jsonable, apply_treatment, atomic_folder
 from .drift import DRIFT_THRESHOLD_KT_PER_NS_PER_DOF, _progress, check_setup, cpu_context, set_threads
 from .errors import MlbridgeError, OptionError
 from .solvate import SolvatedSystem
@@ -669,9 +667,7 @@ def side_by_side_table(results, reference: str) -> list:
 
 def _write(out: Path, solv, sites: Sites, results, settings: dict, elapsed_s: float) -> None:
     from . import plots
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
-    try:
+    with atomic_folder(out) as tmp:
         ok = [r for r in results if r.status == "ok"]
         warnings = gather_warnings(results)
         pngs = {"energy": "energy.png", "torsions": "torsions.png", "rdf": "rdf.png", "speed": "speed.png"}
@@ -725,10 +721,6 @@ def _write(out: Path, solv, sites: Sites, results, settings: dict, elapsed_s: fl
         if checks:  # the per-treatment NVE check report (summary.json, report.md, energy PNGs)
             from .report import write_check_report
             write_check_report(checks, tmp / "check", title="mlbridge setup check: NVE drift and speed per treatment")
-        replace_folder(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
 
 
 def _strict(o):
