@@ -22,7 +22,7 @@ from . import __version__
 from .errors import OptionError, TreatmentError
 from .ligand import Ligand, load_ligand
 from .region import bond_tree, region_bonds_from_topology, remove_region_internal, zero_region_charges
-from .regionforce import FIRST_TERM_GROUP, RegionTermForce, add_region_force
+from .regionforce import FIRST_TERM_GROUP, RegionTermForce, add_region_forces
 from .solvate import SolvatedSystem, solvate
 from .terms.base import RegionInfo, build_term
 from .treatments import Treatment, get_treatment
@@ -211,6 +211,7 @@ def apply_treatment(solv: SolvatedSystem, treatment: Union[str, Treatment], *, m
     info = region_info(solv, with_environment=needs_env)
     tree = bond_tree(info.n_atoms, info.bonds)
     first_content = None
+    placed = []
     for k, module in enumerate(t.terms):
         opts = _term_options(t, module, model, term_options)
         if module == "d3":
@@ -222,7 +223,7 @@ def apply_treatment(solv: SolvatedSystem, treatment: Union[str, Treatment], *, m
         if k == 0:
             first_content = term.content
         group = FIRST_TERM_GROUP + k
-        add_region_force(system, callable_, region, environment, group, periodic)
+        placed.append((callable_, group))
         meta["force_groups"][str(group)] = term.name
         start = _start_point(callable_, solv, region, environment)
         meta["terms"].append(dict(term.describe(), module=module, options=opts, group=group,
@@ -232,6 +233,8 @@ def apply_treatment(solv: SolvatedSystem, treatment: Union[str, Treatment], *, m
             meta["d3_start_energy_kjmol"] = start["energy"]
         if module == "qeq":
             meta["qeq_start"] = start["extras"]
+    if placed:
+        add_region_forces(system, placed, region, environment, periodic)
     return BuiltSystem(system=system, topology=solv.topology, positions=np.array(solv.positions),
                        region=region, treatment=t.name, metadata=meta, solvated=solv)
 

@@ -59,7 +59,7 @@ comparison.md          warnings first, the not-comparable statement, a table wit
 energy.png             NVE total energy minus its start; NVT potential energy minus its mean
 torsions.png           torsion histograms, one panel per rotatable torsion, treatments overlaid
 rdf.png                ligand polar atom - water O g(r), one panel per site, treatments overlaid
-speed.png              ms/step stacked: classical part, region terms, bridge overhead
+speed.png              ms/step: classical part and region terms stacked, measured ms/step marked
 =====================  ===========================================================================
 
 A treatment that cannot be built here (outside the potential's domain, weights not on disk, an
@@ -457,6 +457,8 @@ def _check_summary(r, has_qeq: bool) -> dict:
         "region_terms_ms": dict(sp.terms_ms),
         "region_terms_total_ms": sp.terms_total_ms,
         "bridge_overhead_ms": sp.bridge_overhead_ms,
+        "region_terms_overlapped": sp.overlap,
+        "region_terms_wait_ms": sp.wait_ms,
         "warnings": list(r.warnings),
     }
     u = r.uncertainty
@@ -648,6 +650,8 @@ def side_by_side_table(results, reference: str) -> list:
     row("classical part (ms/step)", lambda r: _f(r.check.speed.classical_ms_per_step, ".2f"))
     row("region terms (ms/step)", lambda r: ", ".join(f"{k} {_f(v, '.2f')}" for k, v in r.check.speed.terms_ms.items()) or "—")
     row("bridge overhead (ms/step)", lambda r: _f(r.check.speed.bridge_overhead_ms, ".2f") if r.check.speed.terms_ms else "—")
+    row("waiting for region terms (ms/step)", lambda r: (_f(r.check.speed.wait_ms, ".2f") + ("" if r.check.speed.overlap else " (serial)"))
+        if r.check.speed.terms_ms else "—")
     row(f"force RMS diff vs `{reference}` (kJ/mol/nm)", lambda r: _f(r.single_point["force_rms_diff_kjmol_nm"]))
     row(f"force max diff vs `{reference}` (kJ/mol/nm)", lambda r: _f(r.single_point["force_max_diff_kjmol_nm"]))
     row("potential-energy std along NVT, whole system (kJ/mol)", lambda r: _f(r.run["energy"]["potential_std_kjmol"]))
@@ -792,8 +796,10 @@ def _markdown(solv, sites, results, settings, warnings, pngs) -> list:
               "- RMSD: ligand heavy atoms after Kabsch superposition on the common start structure.",
               "- Short runs sample little: torsion barriers and solvation shells need nanoseconds; read the "
               "distributions as a first look.",
-              "- Timings depend on this machine's load; overhead = total - classical part - region terms "
-              "(negative values are timing noise)."]
+              "- Timings depend on this machine's load; overhead = total - classical part - region terms. "
+              "Region terms run in a worker thread while OpenMM computes the classical forces, so a negative "
+              "overhead is region-term time hidden behind the classical part (MLBRIDGE_SERIAL_TERMS=1 runs "
+              "them one after the other instead)."]
     for r in ok:
         for t in r.check.metadata.get("terms", []):
             if t.get("module") == "qeq":

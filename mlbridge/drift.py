@@ -22,7 +22,7 @@ import numpy as np
 import openmm
 import openmm.unit as unit
 
-from .regionforce import ledger, region_forces
+from .regionforce import is_region_force, ledger, overlap_enabled, region_forces
 from .units import kT_kjmol
 
 #: Drift threshold, kT/ns per degree of freedom. Common practice, an order of magnitude rather
@@ -147,6 +147,10 @@ class SpeedBreakdown:
     classical_ms_per_step: float
     terms_ms: dict = field(default_factory=dict)
     bridge_overhead_ms: float = 0.0
+    #: region terms ran in the worker thread beside the classical forces (mlbridge.regionforce)
+    overlap: bool = False
+    #: time per step the result forces waited for the worker (part of ms_per_step)
+    wait_ms: float = 0.0
 
     @property
     def terms_total_ms(self) -> float:
@@ -224,7 +228,7 @@ def classical_part(system: openmm.System) -> openmm.System:
     """A copy of ``system`` without mlbridge's region forces (the classical part alone)."""
     copy = openmm.XmlSerializer.clone(system)
     for k in reversed(range(copy.getNumForces())):
-        if copy.getForce(k).getName().startswith("mlbridge:"):
+        if is_region_force(copy.getForce(k)):
             copy.removeForce(k)
     return copy
 
@@ -299,15 +303,17 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
             bar.update(k)
     if bar:
         bar.close()
-    terms_ms = {}
+    terms_ms, wait_ms = {}, 0.0
     for _g, module, key in keys:
         book = ledger(key)
         terms_ms[book.name] = book.ms_per_call
+        wait_ms += book.wait_ms_per_call if book.calls else 0.0
     ms_step = 1000.0 * step_seconds / max(n_nve, 1)
     classical_ms = _time_classical(system, ctx, dt, threads, min(n_nve, 500)) if keys else ms_step
     speed = SpeedBreakdown(threads=threads, ms_per_step=ms_step,
                            ns_per_day=(dt * 1e-3) / (ms_step * 1e-3) * 86400.0,
-                           classical_ms_per_step=classical_ms, terms_ms=terms_ms)
+                           classical_ms_per_step=classical_ms, terms_ms=terms_ms,
+                           overlap=bool(keys) and overlap_enabled(), wait_ms=wait_ms)
     speed.bridge_overhead_ms = ms_step - classical_ms - speed.terms_total_ms if keys else 0.0
     n_dof = degrees_of_freedom(system)
     fit = rep.fit(n_dof=n_dof, temperature_k=temperature_k)

@@ -16,6 +16,8 @@ Constraints are kinematic and are kept (X-H bonds of the region stay rigid if bu
 """
 from __future__ import annotations
 
+import functools
+
 from collections import deque
 from itertools import combinations
 from typing import Iterable, Sequence
@@ -185,21 +187,42 @@ def bond_tree(n_atoms: int, bonds: Iterable) -> tuple:
 def minimum_image(d: np.ndarray, box: np.ndarray) -> np.ndarray:
     """Minimum-image displacement(s) for a box in OpenMM's reduced triclinic form (rows a, b, c)."""
     d = np.array(d, dtype=float, copy=True)
-    d -= np.outer(np.round(d[..., 2] / box[2, 2]), box[2]).reshape(d.shape)
-    d -= np.outer(np.round(d[..., 1] / box[1, 1]), box[1]).reshape(d.shape)
-    d -= np.outer(np.round(d[..., 0] / box[0, 0]), box[0]).reshape(d.shape)
+    d -= np.round(d[..., 2:3] / box[2, 2]) * box[2]
+    d -= np.round(d[..., 1:2] / box[1, 1]) * box[1]
+    d -= np.round(d[..., 0:1] / box[0, 0]) * box[0]
     return d
 
 
 def unwrap(positions: np.ndarray, tree: tuple, box) -> np.ndarray:
-    """Make the region whole: place each child atom at the minimum image of its parent."""
+    """Make the region whole: place each child atom at the minimum image of its parent.
+
+    Equivalent to walking the tree (child = parent + minimum_image(child - parent), parents
+    first) but vectorised: all bond vectors are imaged at once and each atom is its tree root
+    plus the sum of the imaged bond vectors on its path (the reduction is invariant to lattice
+    shifts of the parent, so both give the same positions).
+    """
     x = np.array(positions, dtype=float, copy=True)
     if box is None or not tree:
         return x
-    box = np.asarray(box, dtype=float)
-    for parent, child in tree:
-        x[child] = x[parent] + minimum_image(x[child] - x[parent], box)
-    return x
+    roots, paths, parents, children = _tree_paths(len(x), tuple(tree))
+    bonds = minimum_image(x[children] - x[parents], np.asarray(box, dtype=float))
+    return x[roots] + paths @ bonds
+
+
+@functools.lru_cache(maxsize=64)
+def _tree_paths(n_atoms: int, tree: tuple):
+    """Per atom: its tree root and the 0/1 row of tree edges on the path root -> atom."""
+    roots = np.arange(n_atoms)
+    paths = np.zeros((n_atoms, len(tree)))
+    for e, (parent, child) in enumerate(tree):  # breadth-first: a parent's row is complete
+        paths[child] = paths[parent]
+        paths[child, e] = 1.0
+        roots[child] = roots[parent]
+    parents = np.array([p for p, _ in tree], dtype=np.int64)
+    children = np.array([c for _, c in tree], dtype=np.int64)
+    for a in (roots, paths, parents, children):
+        a.setflags(write=False)
+    return roots, paths, parents, children
 
 
 def region_bonds_from_topology(topology, region: Sequence[int]) -> tuple:

@@ -1,4 +1,4 @@
-"""How region terms reach OpenMM: one ``openmm.PythonForce`` per term, each in its own force group.
+"""How region terms reach OpenMM: ``openmm.PythonForce`` callables, one term per force group.
 
 :class:`RegionTermForce` is the callable a PythonForce calls with the State. It
 
@@ -9,13 +9,38 @@
 4. records the time spent and the term's extras (ensemble spread, charges) in a per-process
    ledger keyed by the force's id, so reporters can read them without holding the object.
 
-The callable pickles only its spec (term module, options, region description), so a System that
-holds it serializes with ``XmlSerializer``; the term is rebuilt on first use after unpickling.
+Overlap with the classical forces
+---------------------------------
+OpenMM evaluates a System's forces one after the other, in the order they were added, and
+releases Python's global lock while its own kernels run. Each term therefore has two forces in
+the same force group:
+
+- a *start* force (:class:`RegionTermStart`), placed before every classical force, whose call
+  hands the positions to one background worker thread and returns zero energy and forces at
+  once;
+- the *result* force (:class:`RegionTermForce`, the last forces of the System), whose call waits
+  for the worker's result for those same positions.
+
+So the region terms run on one core while OpenMM computes the classical forces (PME, bonded)
+with its threads; the step costs about max(classical, terms) instead of their sum. The result
+force checks that the positions it gets are the ones the worker evaluated, and evaluates on the
+spot if they are not (or if nothing was started), so a wrong pairing can only cost time, never
+give a wrong force. Torch runs one intra-op thread (see :func:`mlbridge.drift.set_threads`).
+Set ``MLBRIDGE_SERIAL_TERMS=1`` (or call :func:`set_overlap`) to evaluate every term inside its
+result force instead, e.g. to time the terms without overlap.
+
+The callables pickle only their spec (term module, options, region description), so a System
+that holds them serializes with ``XmlSerializer``; the term is rebuilt on first use after
+unpickling, and the start and result forces of one term find each other by the term's id.
 """
 from __future__ import annotations
 
+import os
+import threading
 import time
 import uuid
+import weakref
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Optional
 
@@ -28,35 +53,97 @@ from .terms.base import RegionInfo, RegionTerm, build_term
 #: first force group used by region terms; the classical forces stay in group 0
 FIRST_TERM_GROUP = 1
 
+#: force-name prefixes of the result and start forces
+RESULT_PREFIX = "mlbridge:"
+START_PREFIX = "mlbridge-start:"
+
+_OVERLAP = os.environ.get("MLBRIDGE_SERIAL_TERMS", "").strip().lower() in ("", "0", "no", "false")
+
+
+def set_overlap(enabled: bool) -> bool:
+    """Run region terms beside the classical forces (True, the default) or inside their result
+    force (False). Returns the previous setting. Applies to every region force in this process."""
+    global _OVERLAP
+    previous, _OVERLAP = _OVERLAP, bool(enabled)
+    return previous
+
+
+def overlap_enabled() -> bool:
+    return _OVERLAP
+
 
 @dataclass
 class TermLedger:
-    """Running statistics of one region force in this process."""
+    """Running statistics of one region term in this process.
+
+    ``seconds`` is the time spent evaluating the term (in the worker or inline), ``wait_seconds``
+    the time result forces spent waiting for the worker, ``overlapped`` how many evaluations ran
+    beside the classical forces.
+    """
 
     name: str
     calls: int = 0
     seconds: float = 0.0
+    wait_seconds: float = 0.0
+    overlapped: int = 0
     last_energy: float = float("nan")
     last_extras: dict = field(default_factory=dict)
 
     def reset(self) -> None:
-        self.calls, self.seconds = 0, 0.0
+        self.calls, self.seconds, self.wait_seconds, self.overlapped = 0, 0.0, 0.0, 0
 
     @property
     def ms_per_call(self) -> float:
         return 1000.0 * self.seconds / self.calls if self.calls else float("nan")
+
+    @property
+    def wait_ms_per_call(self) -> float:
+        return 1000.0 * self.wait_seconds / self.calls if self.calls else float("nan")
 
 
 _LEDGERS: dict = {}
 
 
 def ledger(key: str) -> TermLedger:
-    """The ledger of the region force with id ``key`` (created on first use)."""
+    """The ledger of the region term with id ``key`` (created on first use)."""
     return _LEDGERS.setdefault(key, TermLedger(name=key))
 
 
+_EXECUTOR: Optional[ThreadPoolExecutor] = None
+_EXECUTOR_LOCK = threading.Lock()
+
+
+def _executor() -> ThreadPoolExecutor:
+    """The one worker thread of this process (terms queue up in the order they are started)."""
+    global _EXECUTOR
+    if _EXECUTOR is None:
+        with _EXECUTOR_LOCK:
+            if _EXECUTOR is None:
+                _EXECUTOR = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mlbridge-region")
+    return _EXECUTOR
+
+
+def _forget_executor() -> None:  # a forked child does not inherit the worker thread
+    global _EXECUTOR
+    _EXECUTOR = None
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_executor)
+
+#: the evaluator of each term id in this process (start and result forces share it)
+_EVALUATORS: "weakref.WeakValueDictionary[str, RegionTermForce]" = weakref.WeakValueDictionary()
+
+
+@dataclass
+class _Pending:
+    positions: np.ndarray
+    box: Optional[np.ndarray]
+    future: Future
+
+
 class RegionTermForce:
-    """Callable for ``openmm.PythonForce``: one region term on whole-molecule coordinates.
+    """Callable for the result ``openmm.PythonForce`` of one region term (module docstring).
 
     Parameters
     ----------
@@ -76,14 +163,18 @@ class RegionTermForce:
         self.uses_environment = bool(uses_environment)
         self.key = key or f"{module}-{uuid.uuid4().hex[:8]}"
         self._term: Optional[RegionTerm] = None
+        self._pending: Optional[_Pending] = None
+        self._peer: Optional[RegionTermForce] = None
 
     # pickling: the spec only; the term (torch modules, library handles) is rebuilt lazily
     def __getstate__(self):
-        return {k: v for k, v in self.__dict__.items() if k != "_term"}
+        return {k: v for k, v in self.__dict__.items() if k not in ("_term", "_pending", "_peer")}
 
     def __setstate__(self, state):
         self.__dict__.update(state)
         self._term = None
+        self._pending = None
+        self._peer = None
 
     @property
     def term(self) -> RegionTerm:
@@ -91,6 +182,17 @@ class RegionTermForce:
             self._term = build_term(self.module, self.region, self.options)
             ledger(self.key).name = self._term.name
         return self._term
+
+    def shared(self) -> "RegionTermForce":
+        """The one evaluator of this term id in this process (copies made by pickling, e.g. the
+        start and result forces after ``XmlSerializer``, all resolve to the same object)."""
+        if self._peer is None:
+            peer = _EVALUATORS.get(self.key)
+            if peer is None:
+                _EVALUATORS[self.key] = self
+                peer = self
+            self._peer = peer
+        return self._peer
 
     def evaluate(self, positions_nm: np.ndarray, box_nm: Optional[np.ndarray]):
         """Energy (kJ/mol) and forces (kJ/mol/nm) on this force's particles; also for tests."""
@@ -106,38 +208,135 @@ class RegionTermForce:
             forces = result.region_forces
         return result, forces
 
-    def __call__(self, state):
+    def _timed(self, positions_nm, box_nm):
         t0 = time.perf_counter()
-        pos = state.getPositions(asNumpy=True)._value
-        box = state.getPeriodicBoxVectors(asNumpy=True)._value if self.tree or self.uses_environment else None
-        result, forces = self.evaluate(np.asarray(pos), None if box is None else np.asarray(box))
+        out = self.evaluate(positions_nm, box_nm)
         book = ledger(self.key)
         book.calls += 1
         book.seconds += time.perf_counter() - t0
+        return out
+
+    def _read(self, state):
+        pos = np.array(state.getPositions(asNumpy=True)._value, dtype=float)
+        box = (np.array(state.getPeriodicBoxVectors(asNumpy=True)._value, dtype=float)
+               if self.tree or self.uses_environment else None)
+        return pos, box
+
+    def start(self, state) -> None:
+        """Hand this State's positions to the worker thread (called by the start force)."""
+        pos, box = self._read(state)
+        stale, self._pending = self._pending, _Pending(pos, box, _executor().submit(self._timed, pos, box))
+        if stale is not None:  # started twice without a result call: let the old one finish
+            _quiet_wait(stale.future)
+
+    def __call__(self, state):
+        me = self.shared()
+        pos, box = me._read(state)
+        pending, me._pending = me._pending, None
+        book = ledger(me.key)
+        out = None
+        if pending is not None:
+            t0 = time.perf_counter()
+            if _same(pending, pos, box):
+                try:
+                    out = pending.future.result()  # re-raises the term's own error
+                finally:
+                    book.wait_seconds += time.perf_counter() - t0
+                book.overlapped += 1
+            else:
+                _quiet_wait(pending.future)
+                book.wait_seconds += time.perf_counter() - t0
+        if out is None:
+            out = me._timed(pos, box)
+        result, forces = out
         book.last_energy = result.energy
         book.last_extras = result.extras
         return result.energy, forces
 
 
-def add_region_force(system: openmm.System, callable_: RegionTermForce, region: tuple,
-                     environment: tuple, group: int, periodic: bool) -> openmm.PythonForce:
-    """Add one PythonForce for ``callable_`` to ``system`` on the region (and environment) atoms."""
-    force = openmm.PythonForce(callable_)
-    particles = list(region) + (list(environment) if callable_.uses_environment else [])
-    force.setParticles(particles)
-    force.setUsesPeriodicBoundaryConditions(bool(periodic))
-    force.setForceGroup(group)
-    force.setName(f"mlbridge:{callable_.module}:{callable_.key}")
-    system.addForce(force)
-    return force
+def _same(pending: _Pending, pos: np.ndarray, box: Optional[np.ndarray]) -> bool:
+    if not np.array_equal(pending.positions, pos):
+        return False
+    return (pending.box is None and box is None) or (
+        pending.box is not None and box is not None and np.array_equal(pending.box, box))
+
+
+def _quiet_wait(future: Future) -> None:
+    try:
+        future.result()
+    except Exception:  # the result for other positions is discarded, its error too
+        pass
+
+
+class RegionTermStart:
+    """Callable for the start ``openmm.PythonForce`` of a region term: starts the evaluation
+    in the worker thread and returns zero energy and forces (module docstring)."""
+
+    def __init__(self, target: RegionTermForce, n_particles: int):
+        self.target = target
+        self.n_particles = int(n_particles)
+        self._zeros = None
+
+    def __getstate__(self):
+        return {"target": self.target, "n_particles": self.n_particles}
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._zeros = None
+
+    def __call__(self, state):
+        if _OVERLAP:
+            self.target.shared().start(state)
+        if self._zeros is None:
+            self._zeros = np.zeros((self.n_particles, 3))
+        return 0.0, self._zeros
+
+
+def add_region_forces(system: openmm.System, terms: list, region: tuple, environment: tuple,
+                      periodic: bool) -> list:
+    """Add the start and result PythonForces of each ``(callable_, group)`` in ``terms`` to
+    ``system`` (region atoms, and environment atoms for terms that feel them).
+
+    The start forces come first, in the order of ``terms``, then the forces already in
+    ``system`` (re-added in their order), then the result forces. Returns the result forces.
+    """
+    kept = [openmm.XmlSerializer.clone(system.getForce(k)) for k in range(system.getNumForces())]
+    for k in reversed(range(system.getNumForces())):
+        system.removeForce(k)
+    results = []
+    for callable_, group in terms:
+        callable_.shared()  # this object (with its term already built) evaluates for both forces
+        particles = list(region) + (list(environment) if callable_.uses_environment else [])
+        pair = []
+        for cb, prefix in ((RegionTermStart(callable_, len(particles)), START_PREFIX),
+                           (callable_, RESULT_PREFIX)):
+            f = openmm.PythonForce(cb)
+            f.setParticles(particles)
+            f.setUsesPeriodicBoundaryConditions(bool(periodic))
+            f.setForceGroup(int(group))
+            f.setName(f"{prefix}{callable_.module}:{callable_.key}")
+            pair.append(f)
+        system.addForce(pair[0])
+        results.append(pair[1])
+    for f in kept:
+        system.addForce(f)
+    for f in results:
+        system.addForce(f)
+    return results
+
+
+def is_region_force(force: openmm.Force) -> bool:
+    """Whether ``force`` is one of mlbridge's region forces (start or result)."""
+    name = force.getName()
+    return name.startswith(RESULT_PREFIX) or name.startswith(START_PREFIX)
 
 
 def region_forces(system: openmm.System) -> list:
-    """(force group, module, ledger key) of every mlbridge region force in ``system``."""
+    """(force group, module, ledger key) of every mlbridge region term in ``system``."""
     out = []
     for f in system.getForces():
         name = f.getName()
-        if name.startswith("mlbridge:"):
+        if name.startswith(RESULT_PREFIX):
             _, module, key = name.split(":", 2)
             out.append((f.getForceGroup(), module, key))
     return out

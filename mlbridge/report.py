@@ -42,6 +42,10 @@ def check_section(r: CheckResult, plot_name: str = "") -> list:
     if sp.terms_ms:
         frac = sp.bridge_overhead_ms / sp.terms_total_ms if sp.terms_total_ms else float("nan")
         lines.append(f"| bridge overhead (total - classical - terms) | {_f(sp.bridge_overhead_ms, '.2f')} ms/step ({_f(100 * frac, '.1f')}% of the terms) |")
+        if sp.overlap:
+            lines.append(f"| region terms beside the classical forces | yes: a worker thread evaluates them while OpenMM computes the classical forces (a negative overhead is the time hidden); waiting for them: {_f(sp.wait_ms, '.2f')} ms/step |")
+        else:
+            lines.append("| region terms beside the classical forces | no (MLBRIDGE_SERIAL_TERMS is set): terms run one after the classical forces |")
     for t in r.metadata.get("terms", []):
         extra = f", precision {t['options'].get('precision')}" if t.get("options", {}).get("precision") else ""
         lines.append(f"| term `{t['name']}` (group {t['group']}) | reference {t['reference']}, dispersion {t['dispersion']}, elements {', '.join(t['elements'][:8])}{'...' if len(t['elements']) > 8 else ''}{extra} |")

@@ -115,6 +115,7 @@ import math
 from typing import Any
 
 import numpy as np
+from scipy.linalg.lapack import dposv as _dposv
 from scipy.special import erf
 
 from .. import units
@@ -175,7 +176,15 @@ def switch(d_nm, r_on_nm: float, r_cut_nm: float):
 
 
 def solve_qeq(chi, hardness, total_charge: float):
-    """Minimise chi.q + 1/2 q^T H q under sum q = Q as one KKT solve.
+    """Minimise chi.q + 1/2 q^T H q under sum q = Q.
+
+    With H positive definite (always so for this module's Gaussian widths) the minimum is
+    q = a + mu b with a = -H^-1 chi, b = H^-1 1 and mu = (Q - 1.a) / (1.b): one Cholesky
+    factorisation (LAPACK ``dposv``) for all right-hand sides. Otherwise the KKT system
+
+        [[H, 1], [1^T, 0]] [q, -mu] = [-chi, Q]
+
+    is solved directly.
 
     Parameters
     ----------
@@ -190,6 +199,16 @@ def solve_qeq(chi, hardness, total_charge: float):
     """
     chi = np.asarray(chi, dtype=float)
     n = hardness.shape[0]
+    cols = chi.reshape(n, -1)
+    rhs = np.empty((n, cols.shape[1] + 1))
+    rhs[:, :-1] = -cols
+    rhs[:, -1] = 1.0
+    _, sol, info = _dposv(hardness, rhs)
+    if info == 0:
+        a, b = sol[:, :-1], sol[:, -1]
+        mu = (total_charge - a.sum(axis=0)) / b.sum()
+        q = a + b[:, None] * mu
+        return (q[:, 0], float(mu[0])) if chi.ndim == 1 else (q, mu)
     a = np.zeros((n + 1, n + 1))
     a[:n, :n] = hardness
     a[:n, n] = 1.0
@@ -207,6 +226,8 @@ def _min_image(d, box, inv_box):
     Rounds the fractional coordinates d @ box^-1; exact for vectors much shorter than the box
     (used to make molecules whole), not a general minimum image (see _exact_min_image).
     """
+    if inv_box[0, 1] == inv_box[0, 2] == inv_box[1, 2] == inv_box[1, 0] == inv_box[2, 0] == inv_box[2, 1] == 0.0:
+        return d - np.round(d * inv_box.diagonal()) * box.diagonal()  # orthorhombic: same, cheaper
     return d - np.round(d @ inv_box) @ box
 
 
@@ -230,12 +251,13 @@ def _exact_min_image(d, box, w_min=None):
     neighbouring images picks the shortest. Exact for orthorhombic, triclinic and
     truncated-octahedron boxes.
     """
+    if box[1, 0] == box[2, 0] == box[2, 1] == 0.0:  # orthorhombic: the reduction is exact
+        diag = box.diagonal()
+        return d - np.round(d / diag) * diag
     d = np.array(d, dtype=float)
     d -= np.round(d[:, 2] / box[2, 2])[:, None] * box[2]
     d -= np.round(d[:, 1] / box[1, 1])[:, None] * box[1]
     d -= np.round(d[:, 0] / box[0, 0])[:, None] * box[0]
-    if np.count_nonzero(box - np.diag(np.diag(box))) == 0:
-        return d  # orthorhombic: the reduction is already exact
     half = 0.5 * (_box_widths(box).min() if w_min is None else w_min)
     far = np.nonzero(np.einsum("mi,mi->m", d, d) >= half * half)[0]
     if far.size:
@@ -251,11 +273,13 @@ class QEqTerm(RegionTerm):
     name = "qeq"
     uses_environment = True
 
-    def __init__(self, region: RegionInfo, mode: str, cutoff_nm: float, switch_width_nm: float):
+    def __init__(self, region: RegionInfo, mode: str, cutoff_nm: float, switch_width_nm: float,
+                 skin_nm: float = 0.2):
         self.region = region
         self.mode = mode
         self.cutoff_nm = float(cutoff_nm)
         self.switch_width_nm = float(switch_width_nm)
+        self.skin_nm = float(skin_nm)
         self.r_on_nm = self.cutoff_nm - self.switch_width_nm
         n = region.n_atoms
         bad = sorted(set(region.symbols) - set(RAPPE_GODDARD_EV))
@@ -298,17 +322,17 @@ class QEqTerm(RegionTerm):
         self.env_charges = qe
         self.n_env = qe.size
         if self.n_env:
-            _, self._mol_index = np.unique(mol, return_inverse=True)
-            self._mol_index = self._mol_index.ravel()
+            _, mol_index = np.unique(mol, return_inverse=True)
+            self._mol_index = mol_index.ravel()
             self.n_mol = int(self._mol_index.max()) + 1
-            first = np.full(self.n_mol, self.n_env, dtype=np.int64)
-            np.minimum.at(first, self._mol_index, np.arange(self.n_env))
-            self._atom_first = first[self._mol_index]  # each atom's molecule's first atom
-            self._mol_size = np.bincount(self._mol_index, minlength=self.n_mol).astype(float)
-            k = int(self._mol_size[0])
-            contiguous = np.array_equal(self._mol_index, np.repeat(np.arange(self.n_mol), k))
-            self._uniform = k if contiguous and self.n_env == k * self.n_mol else None
+            self._order = np.argsort(self._mol_index, kind="stable")  # atoms grouped by molecule
+            self._sizes = np.bincount(self._mol_index, minlength=self.n_mol)
+            self._starts = np.concatenate([[0], np.cumsum(self._sizes)[:-1]])
+            self._all = self._group(np.arange(self.n_mol))
+        self._list = None  # Verlet list of molecules (see _verlet_list)
+        self.list_builds = 0
         self._iu = np.triu_indices(n, 1)
+        self._sigma_pairs = self._sigma[self._iu]
         self._box_key = None
         self._box_cache = None
 
@@ -346,11 +370,83 @@ class QEqTerm(RegionTerm):
         i, j = self._iu
         rij = x[i] - x[j]
         r = np.sqrt(np.einsum("pi,pi->p", rij, rij))
-        g, dg = shielded_coulomb(r, self._sigma[i, j])
+        g, dg = shielded_coulomb(r, self._sigma_pairs)
         h = np.diag(self.hardness_diag)
         h[i, j] = g
         h[j, i] = g
         return h, rij, r, dg
+
+    def _group(self, mols):
+        """Index arrays for a set of environment molecules, their atoms listed molecule by molecule."""
+        mols = np.asarray(mols, dtype=np.int64)
+        sizes = self._sizes[mols]
+        seg = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+        total = int(sizes.sum())
+        first_local = np.repeat(seg, sizes)
+        atoms = self._order[np.repeat(self._starts[mols], sizes) + (np.arange(total) - first_local)]
+        uniform = int(sizes[0]) if sizes.size and np.all(sizes == sizes[0]) else None
+        return dict(mols=mols, atoms=atoms, local_mol=np.repeat(np.arange(mols.size), sizes),
+                    first_local=first_local, seg=seg, sizes=sizes.astype(float), uniform=uniform,
+                    charges=self.env_charges[atoms])
+
+    @staticmethod
+    def _whole_centres(ya, g, box, inv_box):
+        """Molecules of group g made whole (each atom imaged next to its molecule's first atom)
+        and their geometric centres."""
+        if box is not None:
+            ref = ya[g["first_local"]]
+            ya = ref + _min_image(ya - ref, box, inv_box)
+        k = g["uniform"]
+        if k is not None:
+            per = ya.reshape(-1, k, 3)
+            c = per[:, 0].copy()
+            for a in range(1, k):
+                c += per[:, a]
+            return ya, c / k
+        return ya, np.add.reduceat(ya, g["seg"], axis=0) / g["sizes"][:, None]
+
+    def _verlet_list(self, y, centre, box, inv_box, w_min):
+        """The molecules whose group distance can be below the cutoff until the list is rebuilt,
+        each with the lattice shift of every atom that puts the molecule whole at its nearest
+        image to the region.
+
+        Built from all molecules (made whole, imaged to the region centre) within
+        cutoff + skin. A group distance changes by at most (largest environment-atom
+        displacement) + (region-centre displacement) since the build; while that sum stays
+        below the skin, no molecule off the list can be inside the cutoff, the listed molecules
+        stay whole, and their stored image stays the nearest one for every molecule within the
+        cutoff (this needs 2 (cutoff + skin) <= the smallest box width, so the skin is capped at
+        half that width minus the cutoff). Past the skin (or when the box changes, or an atom
+        was wrapped into the box) the list is rebuilt. Results do not depend on the skin: listed
+        molecules outside the cutoff contribute exactly zero.
+        """
+        lst = self._list
+        if lst is not None and lst["box_key"] == self._box_key:
+            # |dy| <= sqrt(3) max_k |dy_k|: a cheap, safe bound on the largest displacement
+            moved = math.sqrt(3.0) * float(np.abs(y - lst["y0"]).max())
+            moved += float(np.linalg.norm(centre - lst["c0"]))
+            if moved < lst["skin"]:
+                return lst["group"]
+        g = self._all
+        ya = y[g["atoms"]]
+        whole, centres = self._whole_centres(ya, g, box, inv_box)
+        dc = centres - centre
+        skin = self.skin_nm
+        if box is not None:
+            dc_img = _exact_min_image(dc, box, w_min)
+            shift = (whole - ya) + (dc_img - dc)[g["local_mol"]]
+            dc = dc_img
+            skin = max(0.0, min(skin, 0.5 * w_min - self.cutoff_nm))
+        else:
+            shift = np.zeros_like(ya)
+        reach = self.cutoff_nm + skin
+        keep = np.nonzero(np.einsum("mi,mi->m", dc, dc) < reach * reach)[0]
+        group = self._group(g["mols"][keep])
+        at = np.nonzero(np.isin(g["local_mol"], keep))[0]  # g's atoms of the kept molecules, in order
+        group["shift"] = shift[at]
+        self._list = dict(box_key=self._box_key, y0=y.copy(), c0=centre.copy(), group=group, skin=skin)
+        self.list_builds += 1
+        return group
 
     def _potential(self, x, box_nm, env_nm):
         """phi and what the forces need: atom pairs in the cutoff, switch values and derivatives."""
@@ -366,7 +462,7 @@ class QEqTerm(RegionTerm):
         if y.shape != (self.n_env, 3):
             raise ValueError(f"environment_nm has shape {y.shape}, expected ({self.n_env}, 3)")
         centre = x.mean(axis=0)
-        mol = self._mol_index
+        box = inv_box = w_min = None
         if box_nm is not None:
             box = np.asarray(box_nm, dtype=float).reshape(3, 3)
             key = box.tobytes()
@@ -379,52 +475,42 @@ class QEqTerm(RegionTerm):
                     f"QEq cutoff_nm={self.cutoff_nm} exceeds half the smallest box width "
                     f"({w_min:.4f} nm); use a larger box or a smaller cutoff_nm."
                 )
-            ref = y[self._atom_first]
-            whole = ref + _min_image(y - ref, box, inv_box)
         else:
-            whole = y
-        if self._uniform is not None:  # contiguous molecules of one size (water): reshape
-            k = self._uniform
-            centres = whole.reshape(-1, k, 3).mean(axis=1)
-        else:
-            centres = np.stack(
-                [np.bincount(mol, whole[:, c], minlength=self.n_mol) for c in range(3)], axis=1
-            ) / self._mol_size[:, None]
+            self._box_key = None
+        g = self._verlet_list(y, centre, box, inv_box, w_min)
+        if g["mols"].size == 0:
+            return np.zeros(n), None
+        # listed molecules, whole and at their nearest image (shifts from the list build)
+        ya, centres = self._whole_centres(y[g["atoms"]] + g["shift"], g, None, None)
         dc = centres - centre
-        if box_nm is not None:
-            dc_img = _exact_min_image(dc, box, w_min)
-            shift = dc_img - dc
-            dc = dc_img
         d2 = np.einsum("mi,mi->m", dc, dc)
         inside = np.nonzero(d2 < self.cutoff_nm * self.cutoff_nm)[0]
         if inside.size == 0:
             return np.zeros(n), None
         d = np.sqrt(d2[inside])
         s, ds = switch(d, self.r_on_nm, self.cutoff_nm)
-        pos_in = np.full(self.n_mol, -1, dtype=np.int64)
+        pos_in = np.full(g["mols"].size, -1, dtype=np.int64)
         pos_in[inside] = np.arange(inside.size)
-        local_all = pos_in[mol]
-        atoms = np.nonzero(local_all >= 0)[0]
-        local_mol = local_all[atoms]
-        ya = whole[atoms]
-        if box_nm is not None:
-            ya = ya + shift[inside][local_mol]
+        local_all = pos_in[g["local_mol"]]
+        sel = np.nonzero(local_all >= 0)[0]
+        local_mol = local_all[sel]
         # |x_i - y_a|^2 from the Gram matrix, both relative to the region centre (|.| <~ 1.5 nm,
         # so the cancellation costs < 1e-13 relative); no (n, a, 3) temporaries
         xc = x - centre
-        yc = ya - centre
-        r2 = (
-            np.einsum("ik,ik->i", xc, xc)[:, None]
-            + np.einsum("ak,ak->a", yc, yc)[None, :]
-            - 2.0 * (xc @ yc.T)
-        )
-        inv_r = 1.0 / np.sqrt(r2)
-        pot = (units.COULOMB_KJMOL_NM * self.env_charges[atoms]) * inv_r  # (n, a), unswitched
+        yc = ya[sel]
+        yc -= centre
+        inv_r = xc @ yc.T
+        inv_r *= -2.0
+        inv_r += np.einsum("ik,ik->i", xc, xc)[:, None]
+        inv_r += np.einsum("ak,ak->a", yc, yc)[None, :]
+        np.sqrt(inv_r, out=inv_r)
+        np.divide(1.0, inv_r, out=inv_r)
+        pot = inv_r * (units.COULOMB_KJMOL_NM * g["charges"][sel])  # (n, a): k q_a / r_ia, unswitched
         s_atom = s[local_mol]
         phi = pot @ s_atom
         aux = dict(
-            atoms=atoms, local_mol=local_mol, xc=xc, yc=yc, inv_r=inv_r, pot=pot, s=s, ds=ds,
-            s_atom=s_atom, inside=inside, dc=dc[inside], d=d,
+            atoms=g["atoms"][sel], local_mol=local_mol, xc=xc, yc=yc, inv_r=inv_r, pot=pot, s=s,
+            ds=ds, s_atom=s_atom, inside=inside, sizes=g["sizes"][inside], dc=dc[inside], d=d,
         )
         return phi, aux
 
@@ -459,25 +545,29 @@ class QEqTerm(RegionTerm):
         if aux is not None:
             # E_phi = sum_m S(d_m) sum_i q_i sum_{a in m} k q_a / r_ia
             lm = aux["local_mol"]
-            w = q_env[:, None] * aux["pot"]  # (n, a): q_i k q_a / r_ia
-            coef = w * aux["s_atom"][None, :] * aux["inv_r"] ** 2
-            # force on region atom i from env atom a: coef_ia (x_i - y_a)
+            pot = aux["pot"]
+            # force on region atom i from env atom a: coef_ia (x_i - y_a),
+            # coef_ia = q_i k q_a S_m / r_ia^3
+            coef = pot * aux["inv_r"]
+            coef *= aux["inv_r"]
+            coef *= q_env[:, None]
+            coef *= aux["s_atom"][None, :]
             xc, yc = aux["xc"], aux["yc"]
             f_reg += xc * coef.sum(axis=1)[:, None] - coef @ yc
             fa = yc * coef.sum(axis=0)[:, None] - coef.T @ xc
-            # the switch: sum_m S'(d_m) V_m grad d_m, d_m = |c_m - c_R|
-            v_m = np.bincount(lm, w.sum(axis=0), minlength=len(aux["s"]))
+            # the switch: sum_m S'(d_m) V_m grad d_m, d_m = |c_m - c_R|, V_m = sum_i q_i phi_im
+            v_m = np.bincount(lm, q_env @ pot, minlength=len(aux["s"]))
             gm = (aux["ds"] * v_m / aux["d"])[:, None] * aux["dc"]  # dE/dc_m
-            fa -= (gm / self._mol_size[aux["inside"]][:, None])[lm]
+            fa -= (gm / aux["sizes"][:, None])[lm]
             f_reg += gm.sum(axis=0) / n
             f_env[aux["atoms"]] = fa
 
-        rel = x - x.mean(axis=0)
+        dip = np.linalg.norm(q.T @ (x - x.mean(axis=0)), axis=1) * units.E_NM_DEBYE
         extras = {
             "charges": q_env,
             "charges_vacuum": q_vac,
-            "dipole_debye": float(np.linalg.norm(q_env @ rel)) * units.E_NM_DEBYE,
-            "dipole_vacuum_debye": float(np.linalg.norm(q_vac @ rel)) * units.E_NM_DEBYE,
+            "dipole_debye": float(dip[0]),
+            "dipole_vacuum_debye": float(dip[1]),
             "n_molecules_in_cutoff": 0 if aux is None else int(aux["inside"].size),
         }
         return TermResult(energy=energy, region_forces=f_reg, environment_forces=f_env, extras=extras)
@@ -508,6 +598,7 @@ def make_term(
     mode: str = "anchored",
     cutoff_nm: float = 1.2,
     switch_width_nm: float = 0.2,
+    skin_nm: float = 0.2,
     **unknown,
 ) -> QEqTerm:
     """Build the QEq layer.
@@ -522,6 +613,9 @@ def make_term(
         Group cutoff on the molecule-centre to region-centre distance.
     switch_width_nm : distance, default 0.2 nm
         The switch runs from ``cutoff_nm - switch_width_nm`` to ``cutoff_nm``.
+    skin_nm : distance, default 0.2 nm
+        Margin of the molecule list (see ``QEqTerm._verlet_list``); affects speed only.
+        0 re-examines every environment molecule at every call.
 
     Raises
     ------
@@ -533,19 +627,23 @@ def make_term(
     if unknown:
         raise OptionError(
             f"unknown option(s) {sorted(unknown)} for the QEq term; it takes mode=, cutoff_nm=, "
-            "switch_width_nm="
+            "switch_width_nm=, skin_nm="
         )
     if mode not in _MODES:
         raise OptionError(f"QEq mode must be one of {list(_MODES)}, got {mode!r}")
     try:
         cutoff_nm = float(_in_nm(cutoff_nm))
         switch_width_nm = float(_in_nm(switch_width_nm))
+        skin_nm = float(_in_nm(skin_nm))
     except (TypeError, ValueError) as e:
         raise OptionError(
-            f"cutoff_nm and switch_width_nm must be numbers in nm, got {cutoff_nm!r}, {switch_width_nm!r}"
+            f"cutoff_nm, switch_width_nm and skin_nm must be numbers in nm, got {cutoff_nm!r}, "
+            f"{switch_width_nm!r}, {skin_nm!r}"
         ) from e
+    if not skin_nm >= 0:
+        raise OptionError(f"need skin_nm >= 0, got {skin_nm}")
     if not (cutoff_nm > 0 and 0 < switch_width_nm <= cutoff_nm):
         raise OptionError(
             f"need cutoff_nm > 0 and 0 < switch_width_nm <= cutoff_nm, got {cutoff_nm}, {switch_width_nm}"
         )
-    return QEqTerm(region, mode, cutoff_nm, switch_width_nm)
+    return QEqTerm(region, mode, cutoff_nm, switch_width_nm, skin_nm)
