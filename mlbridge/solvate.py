@@ -11,6 +11,7 @@ TIP3P: Jorgensen et al., J. Chem. Phys. 79, 926 (1983).
 from __future__ import annotations
 
 import io
+import warnings
 import tempfile
 from xml.sax.saxutils import quoteattr
 from dataclasses import dataclass, field
@@ -120,6 +121,8 @@ def box_vectors(solute_nm: np.ndarray, padding_nm: float, box_shape: str, scale:
 #: density of TIP3P at 300 K and 1 bar, g/cm3 (about 0.98; Jorgensen et al. 1983 and later
 #: reevaluations, from memory). Used only to size the placement box before the NPT step.
 TIP3P_DENSITY_300K = 0.98
+#: the NPT step goes on until the water density reaches this fraction of TIP3P_DENSITY_300K
+SETTLED_FRACTION = 0.985
 WATER_MASS_G_MOL = 18.015
 
 
@@ -150,12 +153,15 @@ def _place(ff, lig_top, ligand: Ligand, vectors, salt: float) -> "app.Modeller":
 
 
 def relax(system: openmm.System, positions_nm: np.ndarray, npt_ps: float, *,
-          temperature_k: float = 300.0, threads: int = 2) -> tuple:
+          temperature_k: float = 300.0, threads: int = 2, settled=None,
+          max_extra_ps: float = 10.0) -> tuple:
     """Minimise, then (if ``npt_ps`` > 0) run NPT at 1 bar to bring the water to its density.
 
     Langevin middle integrator (Zhang et al., J. Phys. Chem. A 123, 6056 (2019)), 2 fs, 1/ps
     friction; Monte Carlo barostat every 25 steps (Chow & Ferguson, Comput. Phys. Commun. 91, 283
-    (1995); Aqvist et al., Chem. Phys. Lett. 384, 288 (2004)). Returns (positions, box) in nm.
+    (1995); Aqvist et al., Chem. Phys. Lett. 384, 288 (2004)). With ``settled(box_nm) -> bool``
+    the NPT run goes on in 1 ps pieces, at most ``max_extra_ps`` more, until it returns True.
+    Returns (positions, box) in nm and the NPT time run, ps.
     """
     system = openmm.XmlSerializer.clone(system)
     if npt_ps > 0:
@@ -167,13 +173,21 @@ def relax(system: openmm.System, positions_nm: np.ndarray, npt_ps: float, *,
                          {"Threads": str(threads)})
     ctx.setPositions(positions_nm * unit.nanometer)
     openmm.LocalEnergyMinimizer.minimize(ctx, 10.0, 500)
+    ran = 0.0
     if npt_ps > 0:
         ctx.setVelocitiesToTemperature(temperature_k * unit.kelvin, 2026)
         integ.step(int(round(npt_ps / 0.002)))
+        ran = float(npt_ps)
+        while settled is not None and ran < npt_ps + max_extra_ps:
+            box = ctx.getState().getPeriodicBoxVectors(asNumpy=True).value_in_unit(unit.nanometer)
+            if settled(np.array(box)):
+                break
+            integ.step(500)
+            ran += 1.0
     st = ctx.getState(getPositions=True)
     box = np.array(st.getPeriodicBoxVectors().value_in_unit(unit.nanometer))
     pos = np.array(st.getPositions(asNumpy=True).value_in_unit(unit.nanometer))
-    return pos, box
+    return pos, box, ran
 
 
 def _placement_template(lig_top: "app.AmberPrmtopFile", resname: str) -> str:
@@ -215,7 +229,9 @@ def solvate(ligand: Ligand, *, padding=1.2, box_shape: str = "cube", salt_molar=
     salt_molar : concentration, default 0 M, NaCl on top of the neutralising ions
     cutoff : distance, default 0.9 nm, real-space cutoff of PME and LJ (0.9-1.0 nm allowed)
     density_equilibration_ps : float, default 2 ps, NPT (1 bar, 300 K) after minimisation that
-        closes the gaps Modeller leaves at the box faces; 0 keeps the placed box (minimised only)
+        closes the gaps Modeller leaves at the box faces, extended in 1 ps pieces (at most 10 ps
+        more) until the water density is within 1.5% of TIP3P's (a warning and
+        ``metadata["density_warning"]`` if it is not); 0 keeps the placed box (minimised only)
     """
     padding_nm = _as_nm(padding, "padding")
     cutoff_nm = _as_nm(cutoff, "cutoff")
@@ -276,7 +292,23 @@ def solvate(ligand: Ligand, *, padding=1.2, box_shape: str = "cube", salt_molar=
                 f"tleap built {prmtop.topology.getNumAtoms()} atoms from {len(positions)} placed ones; "
                 f"see the tleap log (residue names of the ligand must not clash with water or ions)."
             )
-    positions, box_nm = relax(system, positions, density_equilibration_ps, temperature_k=300.0)
+    n_water = sum(1 for r in prmtop.topology.residues() if r.name in WATER_RESIDUES)
+
+    def water_density(box_nm) -> float:  # g/cm3, from the water count and the box volume
+        return n_water * WATER_MASS_G_MOL / 6.02214076e23 / (abs(np.linalg.det(box_nm)) * 1e-21)
+
+    # Modeller's gaps at the faces of octahedral boxes can take longer than 2 ps to close: go on
+    # until the water is within 1.5% of TIP3P's density (at most 10 ps more).
+    positions, box_nm, npt_ran_ps = relax(
+        system, positions, density_equilibration_ps, temperature_k=300.0,
+        settled=lambda b: water_density(b) >= SETTLED_FRACTION * TIP3P_DENSITY_300K)
+    density = water_density(box_nm)
+    density_note = ""
+    if density_equilibration_ps > 0 and density < SETTLED_FRACTION * TIP3P_DENSITY_300K:
+        density_note = (f"WARNING: water density {density:.3f} g/cm3 after {npt_ran_ps:g} ps NPT, "
+                        f"below {SETTLED_FRACTION * TIP3P_DENSITY_300K:.3f}; equilibrate longer at NPT "
+                        "before production.")
+        warnings.warn(density_note, stacklevel=2)
     system.setDefaultPeriodicBoxVectors(*(openmm.Vec3(*v) for v in box_nm))
     prmtop.topology.setPeriodicBoxVectors([openmm.Vec3(*v) for v in box_nm] * unit.nanometer)
     region = tuple(a.index for a in prmtop.topology.atoms() if a.residue.name == ligand.name)
@@ -305,8 +337,10 @@ def solvate(ligand: Ligand, *, padding=1.2, box_shape: str = "cube", salt_molar=
         "box_shape": box_shape,
         "padding_nm": padding_nm,
         "padding_achieved_nm": round(achieved_padding(positions[list(region)], solv.box_vectors_nm()), 4),
-        "density_equilibration": f"minimised, then {density_equilibration_ps} ps NPT at 1 bar, 300 K (MC barostat)"
+        "density_equilibration": f"minimised, then {npt_ran_ps:g} ps NPT at 1 bar, 300 K (MC barostat)"
         if density_equilibration_ps > 0 else "minimised only",
+        "water_density_g_cm3": round(density, 4),
+        **({"density_warning": density_note} if density_note else {}),
         "box_vectors_nm": solv.box_vectors_nm().round(6).tolist(),
         "box_volume_nm3": round(solv.box_volume_nm3(), 6),
         "n_waters": solv.water_count(),
