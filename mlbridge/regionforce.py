@@ -25,7 +25,8 @@ So the region terms run on one core while OpenMM computes the classical forces (
 with its threads; the step costs about max(classical, terms) instead of their sum. The result
 force checks that the positions it gets are the ones the worker evaluated, and evaluates on the
 spot if they are not (or if nothing was started), so a wrong pairing can only cost time, never
-give a wrong force. Torch runs one intra-op thread (see :func:`mlbridge.drift.set_threads`).
+give a wrong force. Torch runs one intra-op thread: the worker sets that when it starts
+(``torch.set_num_threads(1)``, a per-process setting).
 Set ``MLBRIDGE_SERIAL_TERMS=1`` (or call :func:`set_overlap`) to evaluate every term inside its
 result force instead, e.g. to time the terms without overlap.
 
@@ -113,13 +114,25 @@ _EXECUTOR: Optional[ThreadPoolExecutor] = None
 _EXECUTOR_LOCK = threading.Lock()
 
 
+def _worker_init() -> None:
+    """Pin torch to one intra-op thread (a per-process setting) when the worker starts: beside
+    OpenMM's own threads a torch pool competes for the same cores (on 2 cores single ANI calls
+    were measured up to 60x slower that way)."""
+    try:
+        import torch
+    except ImportError:  # pragma: no cover - torch is a dependency
+        return
+    torch.set_num_threads(1)
+
+
 def _executor() -> ThreadPoolExecutor:
     """The one worker thread of this process (terms queue up in the order they are started)."""
     global _EXECUTOR
     if _EXECUTOR is None:
         with _EXECUTOR_LOCK:
             if _EXECUTOR is None:
-                _EXECUTOR = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mlbridge-region")
+                _EXECUTOR = ThreadPoolExecutor(max_workers=1, thread_name_prefix="mlbridge-region",
+                                               initializer=_worker_init)
     return _EXECUTOR
 
 
