@@ -3,7 +3,9 @@ padding 1.2 nm, ~1200 TIP3P waters, NVE at 1 fs, CPU platform, OpenMM at --threa
 torch at 1 thread).
 
 Each system is run twice: with the region terms in the worker thread beside the classical forces
-(mlbridge's default) and in series (``set_overlap(False)``, as MLBRIDGE_SERIAL_TERMS=1).
+(mlbridge's default) and in series (``set_overlap(False)``, as MLBRIDGE_SERIAL_TERMS=1). All
+configurations are stepped in interleaved rounds and the medians are printed, so a change in the
+machine's load hits them alike.
 
 Prints:
 - bridge overhead of `ml`: ms/step(ml) - ms/step(classical part alone) - ms(ANI term alone), as a
@@ -12,8 +14,9 @@ Prints:
   (what any long callback costs on this machine, with no region code at all);
 - the long-range layer (D3 + QEq) as a fraction of the ML term's cost (target <= 15%): terms alone
   on the same frames, terms as timed inside the OpenMM run, and ms/step(ml+d3+qeq) - ms/step(ml).
-"Alone" is a direct call of each term's evaluate (unwrap + energy_forces) on the coordinates of
-frames of the same trajectory, outside OpenMM, repeated; "inside the run" is the time spent in
+"Alone" is a direct call of each term's evaluate (unwrap + energy_forces) on 100 consecutive
+1 fs frames of an `ml` trajectory (so neighbour lists are rebuilt as often as in MD), outside
+OpenMM, three passes; "inside the run" is the time spent in
 the term's evaluation during the OpenMM run (its ledger).
 
     .venv/bin/python benchmarks/bench_region_cost.py [--steps 300] [--threads 2]
@@ -35,41 +38,46 @@ from mlbridge.regionforce import RegionTermForce, ledger, region_forces, set_ove
 from mlbridge.solvate import solvate
 
 
-def run(system, positions, threads, steps, keep_every=0):
-    """ms/step of `steps` Verlet steps (after 20 warm-up steps), frames every keep_every steps,
-    and {term name: ms per evaluation inside the run}."""
-    integ = openmm.VerletIntegrator(0.001)
-    ctx = openmm.Context(system, integ, openmm.Platform.getPlatformByName("CPU"), {"Threads": str(threads)})
-    ctx.setPositions(positions * unit.nanometer)
-    ctx.setVelocitiesToTemperature(300 * unit.kelvin, 1)
-    integ.step(20)
-    for _g, _m, key in region_forces(system):
-        ledger(key).reset()
-    frames, t = [], 0.0
-    chunk = keep_every or steps
-    done = 0
-    while done < steps:
-        t0 = time.perf_counter()
-        integ.step(chunk)
-        t += time.perf_counter() - t0
-        done += chunk
-        if keep_every:
-            frames.append(ctx.getState(getPositions=True).getPositions(asNumpy=True).value_in_unit(unit.nanometer))
-    box = np.array(ctx.getState().getPeriodicBoxVectors().value_in_unit(unit.nanometer))
-    inside = {ledger(k).name: ledger(k).ms_per_call for _g, _m, k in region_forces(system)}
-    return 1000 * t / steps, frames, box, inside
+class Timed:
+    """One Context of a system, stepped in chunks so several systems can be timed interleaved."""
 
+    def __init__(self, system, positions, threads, overlap=True):
+        self.system, self.overlap = system, overlap
+        self.integ = openmm.VerletIntegrator(0.001)
+        self.ctx = openmm.Context(system, self.integ, openmm.Platform.getPlatformByName("CPU"),
+                                  {"Threads": str(threads)})
+        self.ctx.setPositions(positions * unit.nanometer)
+        self.ctx.setVelocitiesToTemperature(300 * unit.kelvin, 1)
+        self.ms, self.inside = [], []
+        self.chunk(20, record=False)
 
-def both_modes(system, positions, threads, steps, keep_every=0):
-    """(overlapped, serial) results of run()."""
-    out = []
-    for overlap in (True, False):
-        previous = set_overlap(overlap)
+    def chunk(self, steps, record=True):
+        previous = set_overlap(self.overlap)
         try:
-            out.append(run(system, positions, threads, steps, keep_every))
+            for _g, _m, key in region_forces(self.system):
+                ledger(key).reset()
+            t0 = time.perf_counter()
+            self.integ.step(steps)
+            dt = time.perf_counter() - t0
         finally:
             set_overlap(previous)
-    return out
+        if record:
+            self.ms.append(1000 * dt / steps)
+            self.inside.append({ledger(k).name: ledger(k).ms_per_call for _g, _m, k in region_forces(self.system)})
+
+    def frames(self, n):
+        out = []
+        for _ in range(n):
+            self.integ.step(1)
+            out.append(self.ctx.getState(getPositions=True).getPositions(asNumpy=True).value_in_unit(unit.nanometer))
+        return out, np.array(self.ctx.getState().getPeriodicBoxVectors().value_in_unit(unit.nanometer))
+
+    @property
+    def ms_per_step(self):
+        return float(np.median(self.ms))
+
+    def term_ms(self, name):
+        return float(np.median([d[name] for d in self.inside]))
 
 
 class BusyWait:
@@ -88,14 +96,16 @@ class BusyWait:
 
 def term_alone_ms(callable_: RegionTermForce, frames, region, environment, box, repeats=3):
     idx = list(region) + (list(environment) if callable_.uses_environment else [])
-    callable_.evaluate(np.asarray(frames[0])[idx], box)  # warm-up
-    t0 = time.perf_counter()
-    n = 0
+    inputs = [np.asarray(f)[idx] for f in frames]
+    callable_.evaluate(inputs[0], box)  # warm-up
+    seconds, n = 0.0, 0
     for _ in range(repeats):
-        for f in frames:
-            callable_.evaluate(np.asarray(f)[idx], box)
+        for k, x in enumerate(inputs if _ % 2 == 0 else inputs[::-1]):  # back and forth: no jumps
+            t0 = time.perf_counter()
+            callable_.evaluate(x, box)
+            seconds += time.perf_counter() - t0
             n += 1
-    return 1000 * (time.perf_counter() - t0) / n
+    return 1000 * seconds / n
 
 
 def pct(part, whole):
@@ -106,6 +116,7 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--steps", type=int, default=300)
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--rounds", type=int, default=5, help="interleaved rounds; medians are printed")
     a = ap.parse_args()
     set_threads(a.threads)
     solv = solvate(from_file(DEMO_LIGAND, name="LIG"))
@@ -113,13 +124,25 @@ def main():
     environment = tuple(i for i in range(solv.n_atoms) if i not in set(region))
     ml = apply_treatment(solv, "ml")
     full = apply_treatment(solv, "ml+d3+qeq")
-    print(f"demo system: {solv.n_atoms} atoms, {solv.water_count()} waters; {a.steps} NVE steps at 1 fs; "
+    print(f"demo system: {solv.n_atoms} atoms, {solv.water_count()} waters; {a.steps} NVE steps at 1 fs per "
+          f"configuration in {a.rounds} interleaved rounds (medians); "
           f"OpenMM CPU platform {a.threads} threads, torch {torch.get_num_threads()} thread(s)")
-    ms_cl, _, _, _ = run(classical_part(ml.system), ml.positions, a.threads, a.steps)
-    (ms_ml, frames, box, in_ml), (ms_ml_s, _, _, in_ml_s) = both_modes(ml.system, ml.positions, a.threads,
-                                                                         a.steps, keep_every=10)
-    (ms_full, _, _, in_full), (ms_full_s, _, _, in_full_s) = both_modes(full.system, full.positions,
-                                                                          a.threads, a.steps)
+    busy_system = openmm.XmlSerializer.clone(classical_part(ml.system))
+    busy_wait = BusyWait(len(region), 8.0)  # set to the ANI term's time below
+    f = openmm.PythonForce(busy_wait)
+    f.setParticles(list(region))
+    f.setUsesPeriodicBoundaryConditions(True)
+    f.setForceGroup(1)
+    busy_system.addForce(f)
+    runs = {
+        "classical": Timed(classical_part(ml.system), ml.positions, a.threads),
+        "ml beside": Timed(ml.system, ml.positions, a.threads, overlap=True),
+        "ml series": Timed(ml.system, ml.positions, a.threads, overlap=False),
+        "full beside": Timed(full.system, full.positions, a.threads, overlap=True),
+        "full series": Timed(full.system, full.positions, a.threads, overlap=False),
+        "busy": Timed(busy_system, ml.positions, a.threads),
+    }
+    frames, box = Timed(ml.system, ml.positions, a.threads, overlap=False).frames(100)
     info = region_info(solv, with_environment=True)
     tree = bond_tree(info.n_atoms, info.bonds)
     calls = {}
@@ -131,14 +154,19 @@ def main():
     t_d3 = term_alone_ms(calls["d3"], frames, region, environment, box)
     t_qeq = term_alone_ms(calls["qeq"], frames, region, environment, box)
 
-    busy = openmm.XmlSerializer.clone(classical_part(ml.system))
-    f = openmm.PythonForce(BusyWait(len(region), t_ani))
-    f.setParticles(list(region))
-    f.setUsesPeriodicBoundaryConditions(True)
-    f.setForceGroup(1)
-    busy.addForce(f)
-    ms_busy, _, _, _ = run(busy, ml.positions, a.threads, a.steps)
-
+    busy_wait.ms = t_ani
+    per_round = max(20, a.steps // a.rounds)
+    for _ in range(a.rounds):  # interleaved: every configuration sees the same machine state
+        for r in runs.values():
+            r.chunk(per_round)
+    ms_cl = runs["classical"].ms_per_step
+    ms_ml, ms_ml_s = runs["ml beside"].ms_per_step, runs["ml series"].ms_per_step
+    ms_full, ms_full_s = runs["full beside"].ms_per_step, runs["full series"].ms_per_step
+    ms_busy = runs["busy"].ms_per_step
+    in_ml = {"ani1x": runs["ml beside"].term_ms("ani1x")}
+    in_ml_s = {"ani1x": runs["ml series"].term_ms("ani1x")}
+    in_full = {k: runs["full beside"].term_ms(k) for k in ("ani1x", "d3bj", "qeq")}
+    in_full_s = {k: runs["full series"].term_ms(k) for k in ("ani1x", "d3bj", "qeq")}
     print()
     print(f"classical part alone          {ms_cl:8.2f} ms/step")
     print(f"ANI term alone                {t_ani:8.2f} ms/call")

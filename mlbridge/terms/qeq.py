@@ -423,7 +423,10 @@ class QEqTerm(RegionTerm):
         lst = self._list
         if lst is not None and lst["box_key"] == self._box_key:
             # |dy| <= sqrt(3) max_k |dy_k|: a cheap, safe bound on the largest displacement
-            moved = math.sqrt(3.0) * float(np.abs(y - lst["y0"]).max())
+            buf = lst["buf"]
+            np.subtract(y, lst["y0"], out=buf)
+            np.abs(buf, out=buf)
+            moved = math.sqrt(3.0) * float(buf.max())
             moved += float(np.linalg.norm(centre - lst["c0"]))
             if moved < lst["skin"]:
                 return lst["group"]
@@ -444,7 +447,8 @@ class QEqTerm(RegionTerm):
         group = self._group(g["mols"][keep])
         at = np.nonzero(np.isin(g["local_mol"], keep))[0]  # g's atoms of the kept molecules, in order
         group["shift"] = shift[at]
-        self._list = dict(box_key=self._box_key, y0=y.copy(), c0=centre.copy(), group=group, skin=skin)
+        self._list = dict(box_key=self._box_key, y0=y.copy(), c0=centre.copy(), group=group, skin=skin,
+                          buf=np.empty_like(y))
         self.list_builds += 1
         return group
 
@@ -522,9 +526,16 @@ class QEqTerm(RegionTerm):
             raise ValueError(f"region_nm has shape {x.shape}; this QEq term was built for ({n}, 3)")
         h, rij, r_ij, dg = self._hardness(x)
         phi, aux = self._potential(x, box_nm, environment_nm)
-        chi = -h @ self.anchor_charges if self.mode == "anchored" else self.chi
-        q, _ = solve_qeq(np.stack([chi + phi, chi], axis=1), h, self.total_charge)
-        q_env, q_vac = q[:, 0], q[:, 1]
+        if self.mode == "anchored":
+            # chi(x) = -H(x) q0 makes q0 the vacuum solution exactly; in the field the charges are
+            # q0 + dq with dq the QEq response to phi alone under sum dq = 0
+            q_vac = self.anchor_charges
+            dq, _ = solve_qeq(phi, h, 0.0)
+            q_env = q_vac + dq
+            q = np.stack([q_env, q_vac], axis=1)
+        else:
+            q, _ = solve_qeq(np.stack([self.chi + phi, self.chi], axis=1), h, self.total_charge)
+            q_env, q_vac = q[:, 0], q[:, 1]
         # U = L(q_env; phi) - L(q_vac; 0) = 1/2 phi.(q_vac + q_env) by the stationarity conditions
         energy = 0.5 * float(phi @ (q_vac + q_env))
 
