@@ -290,6 +290,7 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
     rep = EnergyTraceReporter(report_interval, system)
     ctx.setTime(0.0)
     rep.record(ctx.getState(getEnergy=True))
+    clock = _ClassicalClock(system, ctx, dt, threads, n_nve, min(n_nve, 500)) if keys else None
     step_seconds, done = 0.0, 0
     while done < n_nve:
         k = min(report_interval, n_nve - done)
@@ -299,6 +300,8 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
         done += k
         # (the energy evaluation calls the region forces once more; terms are timed per call)
         rep.record(ctx.getState(getEnergy=True))
+        if clock:
+            clock.after(done)
         if bar:
             bar.update(k)
     if bar:
@@ -309,7 +312,7 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
         terms_ms[book.name] = book.ms_per_call
         wait_ms += book.wait_ms_per_call if book.calls else 0.0
     ms_step = 1000.0 * step_seconds / max(n_nve, 1)
-    classical_ms = _time_classical(system, ctx, dt, threads, min(n_nve, 500)) if keys else ms_step
+    classical_ms = clock.ms_per_step() if keys else ms_step
     speed = SpeedBreakdown(threads=threads, ms_per_step=ms_step,
                            ns_per_day=(dt * 1e-3) / (ms_step * 1e-3) * 86400.0,
                            classical_ms_per_step=classical_ms, terms_ms=terms_ms,
@@ -339,24 +342,45 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
     return result
 
 
-def _time_classical(system, ctx, dt, threads, n_steps) -> float:
-    """ms/step of the classical part alone, from the same state, NVE."""
-    st = ctx.getState(getPositions=True, getVelocities=True)
-    csys = classical_part(system)
-    integ = openmm.VerletIntegrator(dt * unit.picoseconds)
-    c2 = cpu_context(csys, integ, threads)
-    c2.setState(st)
-    integ.step(10)
-    t0 = time.perf_counter()
-    integ.step(n_steps)
-    return 1000.0 * (time.perf_counter() - t0) / n_steps
+class _ClassicalClock:
+    """ms/step of the classical part alone, timed in pieces spread along the NVE run (so a change
+    in the machine's load hits it and the run alike); a copy of the system without region
+    forces, started from the run's state, NVE."""
+
+    def __init__(self, system, ctx, dt, threads, n_nve: int, total_steps: int, pieces: int = 5):
+        self.integ = openmm.VerletIntegrator(dt * unit.picoseconds)
+        self.ctx = cpu_context(classical_part(system), self.integ, threads)
+        self.ctx.setState(ctx.getState(getPositions=True, getVelocities=True))
+        self.integ.step(10)
+        self.piece_steps = max(10, total_steps // pieces)
+        self.marks = [int(n_nve * (2 * i + 1) / (2 * pieces)) for i in range(pieces)]
+        self.ms = []
+
+    def after(self, done: int) -> None:
+        """Time the pieces whose mark the run has passed (``done`` NVE steps so far)."""
+        while self.marks and done >= self.marks[0]:
+            self.marks.pop(0)
+            t0 = time.perf_counter()
+            self.integ.step(self.piece_steps)
+            self.ms.append(1000.0 * (time.perf_counter() - t0) / self.piece_steps)
+
+    def ms_per_step(self) -> float:
+        self.after(10**12)
+        return float(np.median(self.ms))
+
+
+#: warn when the QEq dipole in water exceeds this multiple of the vacuum dipole. From memory,
+#: as an order of magnitude: polarisable models raise dipoles in water by tens of percent (water
+#: itself from 1.85 D in the gas to about 2.5-3 D in the liquid); doubling is a red flag.
+QEQ_DIPOLE_RATIO_WARN = 2.0
 
 
 def _summarise_extras(result: CheckResult, extras: dict, n_region: int, spread_threshold: float) -> None:
     from .units import KCAL_KJ
     for module, rows in extras.items():
         if rows and "member_energies_kjmol" in rows[0]:
-            std = np.array([np.std(np.asarray(r["member_energies_kjmol"], float)) for r in rows])
+            # sample std (ddof = 1), as the ANI term's extras and torchani's energies_qbcs
+            std = np.array([np.std(np.asarray(r["member_energies_kjmol"], float), ddof=1) for r in rows])
             rho = std / KCAL_KJ / math.sqrt(n_region)
             result.uncertainty = {
                 "samples": int(std.size),
@@ -384,3 +408,11 @@ def _summarise_extras(result: CheckResult, extras: dict, n_region: int, spread_t
                 "dipole_debye_mean": float(np.mean([r.get("dipole_debye", float("nan")) for r in rows])),
                 "dipole_vacuum_debye": float(rows[0].get("dipole_vacuum_debye", float("nan"))),
             }
+            mu_w, mu_v = result.qeq["dipole_debye_mean"], result.qeq["dipole_vacuum_debye"]
+            if mu_v > 0 and mu_w > QEQ_DIPOLE_RATIO_WARN * mu_v:
+                result.warnings.append(
+                    f"{result.treatment}: QEq raises the ligand's dipole from {mu_v:.3g} D in vacuum to "
+                    f"{mu_w:.3g} D in water ({mu_w / mu_v:.2g}x, warning above {QEQ_DIPOLE_RATIO_WARN}x): "
+                    "QEq with these hardnesses is known to over-polarise, which strengthens the "
+                    "ligand-water interaction; compare hydration structure with ml+d3 before trusting it."
+                )

@@ -75,3 +75,21 @@ def test_reporter_works_in_a_users_simulation():
     assert len(tab["Time (ps)"]) == 20 and "Total Energy (kJ/mole)" in tab
     fit = rep.fit(n_dof=degrees_of_freedom(box.system), temperature_k=300)
     assert np.isfinite(fit.slope_kjmol_per_ns)
+
+
+def test_qeq_over_polarisation_is_flagged():
+    """A dipole in water above twice the vacuum dipole gets a plain warning; a modest rise none."""
+    from types import SimpleNamespace
+
+    from mlbridge.drift import QEQ_DIPOLE_RATIO_WARN, _summarise_extras
+
+    def summary(ratio):
+        res = SimpleNamespace(treatment="ml+d3+qeq", warnings=[], uncertainty=None, qeq=None)
+        rows = [{"charges": [0.1, -0.1], "charges_vacuum": [0.05, -0.05], "dipole_debye": 6.0 * ratio,
+                 "dipole_vacuum_debye": 6.0} for _ in range(3)]
+        _summarise_extras(res, {"qeq": rows}, 2, 0.23)
+        return res
+
+    assert not summary(1.4).warnings
+    flagged = summary(QEQ_DIPOLE_RATIO_WARN + 0.8).warnings
+    assert len(flagged) == 1 and "over-polarise" in flagged[0] and "18 D" in flagged[0]
