@@ -42,3 +42,21 @@ def solvated(demo_ligand, demo_params):
     """The demo ligand in a small cubic box (padding 1.0 nm), density-equilibrated."""
     from mlbridge.solvate import solvate
     return solvate(demo_ligand, padding=1.0, params=demo_params)
+
+
+def cpu_or_reference_context(system, platform="Reference"):
+    """A Context on OpenMM's Reference platform (double precision) or its CPU platform (2 threads)."""
+    import openmm
+    props = {"Threads": "2"} if platform == "CPU" else {}
+    return openmm.Context(system, openmm.VerletIntegrator(0.001), openmm.Platform.getPlatformByName(platform), props)
+
+
+def context_energy_forces(ctx, pos, groups=None):
+    """Potential energy (kJ/mol) and forces (kJ/mol/nm, ndarray) of ``ctx`` at ``pos`` (nm)."""
+    import numpy as np
+    import openmm.unit as unit
+    ctx.setPositions(pos * unit.nanometer)
+    kw = {} if groups is None else {"groups": set(groups)}
+    st = ctx.getState(getEnergy=True, getForces=True, **kw)
+    return (st.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole),
+            np.array(st.getForces(asNumpy=True).value_in_unit(unit.kilojoule_per_mole / unit.nanometer)))

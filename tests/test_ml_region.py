@@ -12,17 +12,8 @@ from mlbridge.parameters import vacuum_topology
 from mlbridge.terms.ani import stock_energy_forces, stock_ensemble
 
 
-def context(system, platform="Reference"):
-    props = {"Threads": "2"} if platform == "CPU" else {}
-    return openmm.Context(system, openmm.VerletIntegrator(0.001), openmm.Platform.getPlatformByName(platform), props)
-
-
-def energy_forces(ctx, pos, groups=None):
-    ctx.setPositions(pos * unit.nanometer)
-    kw = {} if groups is None else {"groups": set(groups)}
-    st = ctx.getState(getEnergy=True, getForces=True, **kw)
-    return (st.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole),
-            np.array(st.getForces(asNumpy=True).value_in_unit(unit.kilojoule_per_mole / unit.nanometer)))
+from conftest import context_energy_forces as energy_forces  # noqa: E402
+from conftest import cpu_or_reference_context as context  # noqa: E402
 
 
 @pytest.fixture(scope="module")

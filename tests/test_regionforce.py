@@ -9,9 +9,9 @@ from types import SimpleNamespace
 
 import numpy as np
 import openmm
-import openmm.unit as unit
 import pytest
 
+from conftest import context_energy_forces, cpu_or_reference_context
 from mlbridge.build import apply_treatment, region_info
 from mlbridge.errors import DomainError
 from mlbridge.region import bond_tree, minimum_image, unwrap
@@ -49,13 +49,7 @@ def serial():
 
 
 def _cpu_state(system, positions, groups=None):
-    ctx = openmm.Context(system, openmm.VerletIntegrator(0.001), openmm.Platform.getPlatformByName("CPU"),
-                         {"Threads": "2"})
-    ctx.setPositions(positions * unit.nanometer)
-    kw = {} if groups is None else {"groups": set(groups)}
-    st = ctx.getState(getEnergy=True, getForces=True, **kw)
-    return (st.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole),
-            np.array(st.getForces(asNumpy=True).value_in_unit(unit.kilojoule_per_mole / unit.nanometer)))
+    return context_energy_forces(cpu_or_reference_context(system, "CPU"), positions, groups)
 
 
 @pytest.fixture(scope="module")
