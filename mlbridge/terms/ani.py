@@ -515,7 +515,9 @@ class AniTerm(RegionTerm):
         rebuilt = self._needs_rebuild(x)
         if rebuilt:
             self._rebuild(x)
-        xt = torch.from_numpy(x).to(self.dtype)
+        # centred in float64 first: the energy is translation invariant, and float32 coordinates
+        # near the origin keep ~7x more digits of the interatomic vectors than box coordinates
+        xt = torch.from_numpy(x - x.mean(axis=0)).to(self.dtype)
         with torch.no_grad():
             aev, cache = self._aev_forward(xt)
             member_nn = 0.0
