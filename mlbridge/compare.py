@@ -87,7 +87,6 @@ from .drift import DRIFT_THRESHOLD_KT_PER_NS_PER_DOF, _progress, check_setup, cp
 from .errors import MlbridgeError, OptionError
 from .solvate import SolvatedSystem
 from .treatments import TREATMENTS, get_treatment
-from .units import kT_kjmol
 
 __all__ = ["compare", "single_point", "sample_nvt", "structural_observables", "NOT_COMPARABLE",
            "TORSION_BINS", "RDF_BIN_NM", "RDF_R_MAX_NM"]
@@ -643,7 +642,7 @@ def side_by_side_table(results, reference: str) -> list:
 
     lines.append("| status | " + " | ".join(r.status if r.status == "ok" else f"**{r.status}**" for r in results) + " |")
     row("drift ± 2σ (kT/ns/DOF)", lambda r: f"{_f(r.check.fit.slope_kT_per_ns_per_dof)} "
-        f"± {_f(2 * r.check.fit.slope_stderr_kjmol_per_ns / r.check.fit.n_dof / kT_kjmol(r.check.temperature_k), '.2g')} "
+        f"± {_f(r.check.drift_2sigma_kT_per_ns_per_dof, '.2g')} "
         f"({_DRIFT_CELL.get(_drift_status(r.check), _drift_status(r.check))})")
     row("ms/step", lambda r: _f(r.check.speed.ms_per_step, ".2f"))
     row("ns/day", lambda r: _f(r.check.speed.ns_per_day, ".2f"))

@@ -181,18 +181,22 @@ class CheckResult:
         return abs(self.fit.slope_kT_per_ns_per_dof) <= self.threshold_kT_per_ns_per_dof
 
     @property
+    def drift_2sigma_kT_per_ns_per_dof(self) -> float:
+        """Twice the least-squares error of the drift, kT/ns per DOF."""
+        return 2.0 * self.fit.slope_stderr_kjmol_per_ns / self.fit.n_dof / kT_kjmol(self.temperature_k)
+
+    @property
     def resolved(self) -> bool:
         """The drift is known well enough to judge: its 2-sigma error is below the threshold."""
-        err = 2.0 * self.fit.slope_stderr_kjmol_per_ns / self.fit.n_dof / kT_kjmol(self.temperature_k)
-        return err <= self.threshold_kT_per_ns_per_dof
+        return self.drift_2sigma_kT_per_ns_per_dof <= self.threshold_kT_per_ns_per_dof
 
     @property
     def status(self) -> str:
         """"pass", "drifts" (above the threshold beyond its 2-sigma error) or "unresolved"."""
         if self.passed:
             return "pass"
-        err = 2.0 * self.fit.slope_stderr_kjmol_per_ns / self.fit.n_dof / kT_kjmol(self.temperature_k)
-        return "drifts" if abs(self.fit.slope_kT_per_ns_per_dof) - err > self.threshold_kT_per_ns_per_dof else "unresolved"
+        beyond = abs(self.fit.slope_kT_per_ns_per_dof) - self.drift_2sigma_kT_per_ns_per_dof
+        return "drifts" if beyond > self.threshold_kT_per_ns_per_dof else "unresolved"
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -328,7 +332,7 @@ def check_setup(built, *, dt_fs: float = 1.0, equilibration_ps: float = 2.0, nve
     if result.status == "unresolved":
         result.warnings.append(
             f"{built.treatment}: the drift {fit.slope_kT_per_ns_per_dof:.3g} ± "
-            f"{2 * fit.slope_stderr_kjmol_per_ns / n_dof / kT_kjmol(temperature_k):.2g} (2 sigma) kT/ns per DOF "
+            f"{result.drift_2sigma_kT_per_ns_per_dof:.2g} (2 sigma) kT/ns per DOF "
             f"at dt = {dt_fs} fs is above the threshold {threshold_kT_per_ns_per_dof} but not resolved from it: "
             f"the {nve_ps} ps NVE run is too short to judge. Run the check longer (--nve-ps)."
         )

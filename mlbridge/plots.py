@@ -80,6 +80,29 @@ def plot_compare_energy(nve: dict, nvt: dict, path: Path) -> Path:
     return Path(path)
 
 
+def _panel_grid(n_panels: int, empty_message: str):
+    """A figure of up to two columns of panels, one per item; with no item, one panel saying
+    ``empty_message``. Returns (figure, flat array of axes)."""
+    n = max(1, n_panels)
+    cols = min(n, 2)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(5.5 * cols, 3.2 * rows), squeeze=False)
+    flat = axes.ravel()
+    if not n_panels:
+        _empty_panel(flat[0], empty_message)
+    return fig, flat
+
+
+def _save_panel_grid(fig, flat, n_panels: int, path: Path) -> Path:
+    """Hide the unused panels of a :func:`_panel_grid` figure, save it and close it."""
+    for ax in flat[n_panels or 1:]:
+        ax.set_visible(False)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return Path(path)
+
+
 def plot_compare_torsions(labels: list, histograms: dict, path: Path) -> Path:
     """One panel per torsion, the treatments' normalised histograms overlaid.
 
@@ -88,13 +111,7 @@ def plot_compare_torsions(labels: list, histograms: dict, path: Path) -> Path:
     labels : torsion labels, one per panel
     histograms : {treatment: [(edges_deg, density_per_deg) per torsion]}
     """
-    n = max(1, len(labels))
-    cols = min(n, 2)
-    rows = int(np.ceil(n / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(5.5 * cols, 3.2 * rows), squeeze=False)
-    flat = axes.ravel()
-    if not labels:
-        _empty_panel(flat[0], "the ligand has no rotatable torsion")
+    fig, flat = _panel_grid(len(labels), "the ligand has no rotatable torsion")
     for q, label in enumerate(labels):
         ax = flat[q]
         for k, (name, hs) in enumerate(histograms.items()):
@@ -107,12 +124,7 @@ def plot_compare_torsions(labels: list, histograms: dict, path: Path) -> Path:
         ax.set_ylabel("density (1/degree)")
         if histograms:
             ax.legend(fontsize=7)
-    for ax in flat[len(labels) or 1:]:
-        ax.set_visible(False)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return _save_panel_grid(fig, flat, len(labels), path)
 
 
 def plot_compare_rdfs(sites: list, rdfs: dict, path: Path) -> Path:
@@ -123,13 +135,7 @@ def plot_compare_rdfs(sites: list, rdfs: dict, path: Path) -> Path:
     sites : site labels, one per panel
     rdfs : {treatment: [(r_nm, g) per site]}
     """
-    n = max(1, len(sites))
-    cols = min(n, 2)
-    rows = int(np.ceil(n / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(5.5 * cols, 3.2 * rows), squeeze=False)
-    flat = axes.ravel()
-    if not sites:
-        _empty_panel(flat[0], "no ligand N/O or no water oxygens")
+    fig, flat = _panel_grid(len(sites), "no ligand N/O or no water oxygens")
     for k, site in enumerate(sites):
         ax = flat[k]
         for j, (name, rows_) in enumerate(rdfs.items()):
@@ -141,12 +147,7 @@ def plot_compare_rdfs(sites: list, rdfs: dict, path: Path) -> Path:
         ax.set_ylabel("g(r)")
         if rdfs:
             ax.legend(fontsize=7)
-    for ax in flat[len(sites) or 1:]:
-        ax.set_visible(False)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return _save_panel_grid(fig, flat, len(sites), path)
 
 
 def plot_compare_speed(speeds: dict, path: Path, threads: int = None) -> Path:
