@@ -147,6 +147,25 @@ if hasattr(os, "register_at_fork"):
 #: the evaluator of each term id in this process (start and result forces share it)
 _EVALUATORS: "weakref.WeakValueDictionary[str, RegionTermForce]" = weakref.WeakValueDictionary()
 
+_LAST_UNWRAP = threading.local()  # per thread: the last (positions, box, tree) and its result
+
+
+def _unwrapped(xr: np.ndarray, tree: tuple, box: Optional[np.ndarray]) -> np.ndarray:
+    """unwrap(xr, tree, box), reusing the previous result for identical input in this thread.
+
+    The terms of one step see the same region positions; the first unwraps them, the others
+    (D3, QEq after ANI) get the same read-only array. Equality is checked bit for bit, so a
+    cached result is only ever the exact result for these inputs.
+    """
+    last = getattr(_LAST_UNWRAP, "entry", None)
+    if (last is not None and last[2] == tree and np.array_equal(last[0], xr)
+            and (box is None if last[1] is None else box is not None and np.array_equal(last[1], box))):
+        return last[3]
+    out = unwrap(xr, tree, box)
+    out.setflags(write=False)
+    _LAST_UNWRAP.entry = (xr.copy(), None if box is None else box.copy(), tree, out)
+    return out
+
 
 @dataclass
 class _Pending:
@@ -210,7 +229,7 @@ class RegionTermForce:
     def evaluate(self, positions_nm: np.ndarray, box_nm: Optional[np.ndarray]):
         """Energy (kJ/mol) and forces (kJ/mol/nm) on this force's particles; also for tests."""
         n_r = self.region.n_atoms
-        xr = unwrap(positions_nm[:n_r], self.tree, box_nm)
+        xr = _unwrapped(positions_nm[:n_r], self.tree, box_nm)
         env = positions_nm[n_r:] if self.uses_environment else None
         result = self.term.energy_forces(xr, box_nm, env)
         if self.uses_environment:

@@ -19,6 +19,7 @@ from mlbridge.regionforce import (
     RESULT_PREFIX,
     START_PREFIX,
     RegionTermForce,
+    _unwrapped,
     ledger,
     overlap_enabled,
     region_forces,
@@ -189,6 +190,27 @@ def test_vectorised_unwrap_equals_the_tree_walk(box):
         np.testing.assert_allclose(got, _walk(wrapped, tree, box), atol=1e-12)
         lengths = np.linalg.norm(got[[c for _, c in tree]] - got[[p for p, _ in tree]], axis=1)
         np.testing.assert_allclose(lengths, 0.15, atol=1e-12)
+
+
+def test_shared_unwrap_is_exact_for_each_input():
+    # the terms of one step share one unwrap; any change of positions, box or tree recomputes
+    tree = bond_tree(4, [(0, 1), (1, 2), (2, 3)])
+    box = np.eye(3) * 2.0
+    x = np.cumsum(np.full((4, 3), 0.12), axis=0) + 1.9  # crosses the boundary
+    x_wrapped = x % 2.0
+    first = _unwrapped(x_wrapped, tree, box)
+    assert _unwrapped(x_wrapped.copy(), tree, box) is first  # same bits: reused
+    np.testing.assert_allclose(first, unwrap(x_wrapped, tree, box), atol=0)
+    with pytest.raises(ValueError):
+        first[0, 0] = 0.0  # read-only: a term cannot alter what the next term gets
+    moved = x_wrapped.copy()
+    moved[2, 1] += 1e-12
+    np.testing.assert_array_equal(_unwrapped(moved, tree, box), unwrap(moved, tree, box))
+    other_box = np.eye(3) * 2.5
+    np.testing.assert_array_equal(_unwrapped(x_wrapped, tree, other_box), unwrap(x_wrapped, tree, other_box))
+    np.testing.assert_array_equal(_unwrapped(x_wrapped, tree, None), x_wrapped)
+    other_tree = bond_tree(4, [(0, 1), (0, 2), (0, 3)])
+    np.testing.assert_array_equal(_unwrapped(x_wrapped, other_tree, box), unwrap(x_wrapped, other_tree, box))
 
 
 def test_qeq_molecule_list_changes_nothing(solvated):

@@ -167,11 +167,25 @@ def shielded_coulomb(r_nm, sigma_nm):
 
 def switch(d_nm, r_on_nm: float, r_cut_nm: float):
     """C2 switch S(d) = 1 - 10t^3 + 15t^4 - 6t^5 from r_on to r_cut, and dS/dd (1/nm)."""
-    d = np.asarray(d_nm, dtype=float)
+    t = np.array(d_nm, dtype=float, ndmin=1)  # a new array: everything below is in place
+    t -= r_on_nm
     w = r_cut_nm - r_on_nm
-    t = np.clip((d - r_on_nm) / w, 0.0, 1.0)
-    s = 1.0 - t**3 * (10.0 - 15.0 * t + 6.0 * t * t)
-    ds = -30.0 * t * t * (1.0 - t) ** 2 / w
+    t *= 1.0 / w
+    np.clip(t, 0.0, 1.0, out=t)
+    s = t * 6.0
+    s -= 15.0
+    s *= t
+    s += 10.0
+    s *= t
+    s *= t
+    s *= t  # 10t^3 - 15t^4 + 6t^5
+    np.subtract(1.0, s, out=s)
+    ds = 1.0 - t
+    ds *= t
+    np.square(ds, out=ds)
+    ds *= -30.0 / w  # -30 t^2 (1 - t)^2 / w
+    if np.ndim(d_nm) == 0:
+        return float(s[0]), float(ds[0])
     return s, ds
 
 
@@ -230,6 +244,9 @@ def _min_image(d, box, inv_box):
         return d - np.round(d * inv_box.diagonal()) * box.diagonal()  # orthorhombic: same, cheaper
     return d - np.round(d @ inv_box) @ box
 
+
+_XYZ = np.arange(3)
+_ONES3 = np.ones(3)
 
 _NEIGHBOUR_SHIFTS = np.array(
     [(i, j, k) for i in (-1, 0, 1) for j in (-1, 0, 1) for k in (-1, 0, 1)], dtype=float
@@ -331,8 +348,11 @@ class QEqTerm(RegionTerm):
             self._all = self._group(np.arange(self.n_mol))
         self._list = None  # Verlet list of molecules (see _verlet_list)
         self.list_builds = 0
-        self._iu = np.triu_indices(n, 1)
-        self._sigma_pairs = self._sigma[self._iu]
+        self._mean_weights = np.full(n, 1.0 / n)
+        self._inv_sigma = 1.0 / self._sigma
+        self._eye = np.eye(n)
+        self._off = 1.0 - self._eye  # zero on the diagonal
+        self._j_diag = np.diag(self.hardness_diag)
         self._box_key = None
         self._box_cache = None
 
@@ -366,15 +386,35 @@ class QEqTerm(RegionTerm):
         return self._potential(np.asarray(region_nm, dtype=float), box_nm, environment_nm)[0]
 
     def _hardness(self, x):
-        n = len(x)
-        i, j = self._iu
-        rij = x[i] - x[j]
-        r = np.sqrt(np.einsum("pi,pi->p", rij, rij))
-        g, dg = shielded_coulomb(r, self._sigma_pairs)
-        h = np.diag(self.hardness_diag)
-        h[i, j] = g
-        h[j, i] = g
-        return h, rij, r, dg
+        """H (n, n) and gamma'(r_ij)/r_ij (n, n, zero on the diagonal), as full matrices.
+
+        gamma' = k_e [2/sqrt(pi) exp(-u^2) / (sigma r) - erf(u) / r^2], u = r/sigma.
+        """
+        xc = x - self._mean_weights @ x  # centred: |x|^2 + |x'|^2 - 2 x.x' loses < 1e-13 relative
+        xx = np.square(xc) @ _ONES3
+        r = xc @ xc.T
+        r *= -2.0
+        r += xx
+        r += xx[:, None]
+        r += self._eye  # r_ii = 1: finite everywhere, the diagonal is replaced below
+        np.maximum(r, 0.0, out=r)
+        np.sqrt(r, out=r)
+        inv_r = 1.0 / r
+        u = r * self._inv_sigma
+        e = erf(u)
+        e *= inv_r  # erf(u)/r
+        np.square(u, out=u)
+        np.negative(u, out=u)
+        np.exp(u, out=u)
+        u *= self._inv_sigma
+        u *= _TWO_OVER_SQRT_PI
+        u -= e  # [2/sqrt(pi) exp(-u^2)/sigma - erf(u)/r] = r gamma'/k_e
+        u *= inv_r
+        u *= inv_r
+        u *= units.COULOMB_KJMOL_NM * self._off  # gamma'/r, zero diagonal
+        e *= units.COULOMB_KJMOL_NM * self._off
+        e += self._j_diag  # H
+        return e, u
 
     def _group(self, mols):
         """Index arrays for a set of environment molecules, their atoms listed molecule by molecule."""
@@ -385,9 +425,14 @@ class QEqTerm(RegionTerm):
         first_local = np.repeat(seg, sizes)
         atoms = self._order[np.repeat(self._starts[mols], sizes) + (np.arange(total) - first_local)]
         uniform = int(sizes[0]) if sizes.size and np.all(sizes == sizes[0]) else None
+        charges = self.env_charges[atoms]
         return dict(mols=mols, atoms=atoms, local_mol=np.repeat(np.arange(mols.size), sizes),
                     first_local=first_local, seg=seg, sizes=sizes.astype(float), uniform=uniform,
-                    charges=self.env_charges[atoms])
+                    charges=charges, kq=units.COULOMB_KJMOL_NM * charges,
+                    flat_atoms=(3 * atoms[:, None] + _XYZ).ravel(),
+                    flat_rows=(3 * np.arange(total)[:, None] + _XYZ),
+                    average=(np.tile(np.eye(3), (uniform, 1)) / uniform) if uniform else None,
+                    inv_sizes=(1.0 / sizes)[:, None] if sizes.size else np.zeros((0, 1)))
 
     @staticmethod
     def _whole_centres(ya, g, box, inv_box):
@@ -427,7 +472,8 @@ class QEqTerm(RegionTerm):
             np.subtract(y, lst["y0"], out=buf)
             np.abs(buf, out=buf)
             moved = math.sqrt(3.0) * float(buf.max())
-            moved += float(np.linalg.norm(centre - lst["c0"]))
+            dcen = centre - lst["c0"]
+            moved += math.sqrt(float(dcen @ dcen))
             if moved < lst["skin"]:
                 return lst["group"]
         g = self._all
@@ -453,7 +499,11 @@ class QEqTerm(RegionTerm):
         return group
 
     def _potential(self, x, box_nm, env_nm):
-        """phi and what the forces need: atom pairs in the cutoff, switch values and derivatives."""
+        """phi and what the forces need (see energy_forces), or (zeros, None) with nothing in reach.
+
+        Every listed molecule takes part; those at or beyond the cutoff have S = S' = 0 and
+        contribute exactly zero (cheaper than selecting the ones inside at every call).
+        """
         n = len(x)
         if self.n_env == 0:
             return np.zeros(n), None
@@ -465,7 +515,7 @@ class QEqTerm(RegionTerm):
         y = np.asarray(env_nm, dtype=float)
         if y.shape != (self.n_env, 3):
             raise ValueError(f"environment_nm has shape {y.shape}, expected ({self.n_env}, 3)")
-        centre = x.mean(axis=0)
+        centre = self._mean_weights @ x
         box = inv_box = w_min = None
         if box_nm is not None:
             box = np.asarray(box_nm, dtype=float).reshape(3, 3)
@@ -484,38 +534,44 @@ class QEqTerm(RegionTerm):
         g = self._verlet_list(y, centre, box, inv_box, w_min)
         if g["mols"].size == 0:
             return np.zeros(n), None
-        # listed molecules, whole and at their nearest image (shifts from the list build)
-        ya, centres = self._whole_centres(y[g["atoms"]] + g["shift"], g, None, None)
-        dc = centres - centre
-        d2 = np.einsum("mi,mi->m", dc, dc)
-        inside = np.nonzero(d2 < self.cutoff_nm * self.cutoff_nm)[0]
-        if inside.size == 0:
-            return np.zeros(n), None
-        d = np.sqrt(d2[inside])
-        s, ds = switch(d, self.r_on_nm, self.cutoff_nm)
-        pos_in = np.full(g["mols"].size, -1, dtype=np.int64)
-        pos_in[inside] = np.arange(inside.size)
-        local_all = pos_in[g["local_mol"]]
-        sel = np.nonzero(local_all >= 0)[0]
-        local_mol = local_all[sel]
-        # |x_i - y_a|^2 from the Gram matrix, both relative to the region centre (|.| <~ 1.5 nm,
-        # so the cancellation costs < 1e-13 relative); no (n, a, 3) temporaries
-        xc = x - centre
-        yc = ya[sel]
+        # listed atoms, whole and at their nearest image (shifts from the list build), relative
+        # to the region centre (|.| <~ 1.5 nm), and their molecules' centres
+        yc = y.take(g["atoms"], axis=0)
+        yc += g["shift"]
         yc -= centre
-        inv_r = xc @ yc.T
-        inv_r *= -2.0
-        inv_r += np.einsum("ik,ik->i", xc, xc)[:, None]
-        inv_r += np.einsum("ak,ak->a", yc, yc)[None, :]
+        k = g["uniform"]
+        if k is not None:  # (m, 3k) @ (3k, 3): the mean of each molecule's k atoms
+            dc = yc.reshape(-1, 3 * k) @ g["average"]
+        else:
+            dc = np.add.reduceat(yc, g["seg"], axis=0)
+            dc *= g["inv_sizes"]
+        d = np.sqrt(np.square(dc) @ _ONES3)
+        s, ds = switch(d, self.r_on_nm, self.cutoff_nm)
+        w = s.take(g["local_mol"])
+        w *= g["kq"]  # w_a = k_e q_a S(d_m(a))
+        # only the charged atoms of molecules inside the cutoff: the others have w_a = 0 and
+        # add exactly nothing to phi or to any force but the switch's (handled by molecule)
+        sel = np.flatnonzero(w)
+        if sel.size == 0:  # nothing charged inside the cutoff
+            return np.zeros(n), None
+        w = w.take(sel)
+        yc = yc.take(sel, axis=0)
+        # |x_i - y_a|^2 in one product: [x, |x|^2, 1] . [-2 y, 1, |y|^2] (no (n, a, 3) temporaries;
+        # relative to the region centre the cancellation costs < 1e-13 relative)
+        xc = x - centre
+        xa = np.empty((n, 5))
+        xa[:, :3] = xc
+        xa[:, 3] = np.square(xc) @ _ONES3
+        xa[:, 4] = 1.0
+        ya = np.empty((5, len(yc)))
+        np.multiply(yc.T, -2.0, out=ya[:3])
+        ya[3] = 1.0
+        ya[4] = np.square(yc) @ _ONES3
+        inv_r = xa @ ya
         np.sqrt(inv_r, out=inv_r)
-        np.divide(1.0, inv_r, out=inv_r)
-        pot = inv_r * (units.COULOMB_KJMOL_NM * g["charges"][sel])  # (n, a): k q_a / r_ia, unswitched
-        s_atom = s[local_mol]
-        phi = pot @ s_atom
-        aux = dict(
-            atoms=g["atoms"][sel], local_mol=local_mol, xc=xc, yc=yc, inv_r=inv_r, pot=pot, s=s,
-            ds=ds, s_atom=s_atom, inside=inside, sizes=g["sizes"][inside], dc=dc[inside], d=d,
-        )
+        np.divide(1.0, inv_r, out=inv_r)  # (n, a): 1/r_ia
+        phi = inv_r @ w
+        aux = dict(g=g, sel=sel, xc=xc, yc=yc, inv_r=inv_r, w=w, s=s, ds=ds, d=d, dc=dc)
         return phi, aux
 
     # ---- the contract ----------------------------------------------------------------------
@@ -524,7 +580,7 @@ class QEqTerm(RegionTerm):
         n = self.region.n_atoms
         if x.shape != (n, 3):
             raise ValueError(f"region_nm has shape {x.shape}; this QEq term was built for ({n}, 3)")
-        h, rij, r_ij, dg = self._hardness(x)
+        h, dg_r = self._hardness(x)
         phi, aux = self._potential(x, box_nm, environment_nm)
         if self.mode == "anchored":
             # chi(x) = -H(x) q0 makes q0 the vacuum solution exactly; in the field the charges are
@@ -532,54 +588,67 @@ class QEqTerm(RegionTerm):
             q_vac = self.anchor_charges
             dq, _ = solve_qeq(phi, h, 0.0)
             q_env = q_vac + dq
-            q = np.stack([q_env, q_vac], axis=1)
+            energy = float(phi @ q_vac) + 0.5 * float(phi @ dq)
+            c = np.multiply.outer(dq, dq)
         else:
             q, _ = solve_qeq(np.stack([self.chi + phi, self.chi], axis=1), h, self.total_charge)
             q_env, q_vac = q[:, 0], q[:, 1]
-        # U = L(q_env; phi) - L(q_vac; 0) = 1/2 phi.(q_vac + q_env) by the stationarity conditions
-        energy = 0.5 * float(phi @ (q_vac + q_env))
-
-        # hardness part: dU/dr_ij = c_ij gamma'(r_ij) with c_ij the charge products at the optimum
-        # (anchored: chi(x) = -H(x) q0 contributes too, giving c_ij = dq_i dq_j)
-        i, j = self._iu
-        if self.mode == "anchored":
-            dq = q_env - q_vac
-            c = dq[i] * dq[j]
-        else:
-            c = q_env[i] * q_env[j] - q_vac[i] * q_vac[j]
-        cm = np.zeros((n, n))
-        cm[i, j] = -(c * dg) / r_ij
-        cm += cm.T
-        f_reg = x * cm.sum(axis=1)[:, None] - cm @ x  # sum_j cm_ij (x_i - x_j)
-        f_env = np.zeros((self.n_env, 3)) if self.n_env else None
-
+            energy = 0.5 * float(phi @ (q_vac + q_env))
+            c = np.multiply.outer(q_env, q_env)
+            c -= np.multiply.outer(q_vac, q_vac)
+        # U = L(q_env; phi) - L(q_vac; 0) = 1/2 phi.(q_vac + q_env) by the stationarity conditions.
+        # Hardness part: dU/dr_ij = c_ij gamma'(r_ij) with c_ij the charge products at the optimum
+        # (anchored: chi(x) = -H(x) q0 contributes too, giving c_ij = dq_i dq_j); with
+        # cm_ij = -c_ij gamma'_ij / r_ij the force is sum_j cm_ij (x_i - x_j)
+        c *= dg_r
+        np.negative(c, out=c)
+        f_reg = x * c.sum(axis=1)[:, None]
+        f_reg -= c @ x
+        xc = x - x.mean(axis=0) if aux is None else aux["xc"]
+        f_env = None
+        n_inside = 0
+        if self.n_env:
+            f_env = np.zeros((self.n_env, 3))
         if aux is not None:
-            # E_phi = sum_m S(d_m) sum_i q_i sum_{a in m} k q_a / r_ia
-            lm = aux["local_mol"]
-            pot = aux["pot"]
-            # force on region atom i from env atom a: coef_ia (x_i - y_a),
-            # coef_ia = q_i k q_a S_m / r_ia^3
-            coef = pot * aux["inv_r"]
-            coef *= aux["inv_r"]
-            coef *= q_env[:, None]
-            coef *= aux["s_atom"][None, :]
-            xc, yc = aux["xc"], aux["yc"]
-            f_reg += xc * coef.sum(axis=1)[:, None] - coef @ yc
-            fa = yc * coef.sum(axis=0)[:, None] - coef.T @ xc
+            # E_phi = sum_i q_i phi_i, phi_i = sum_a w_a / r_ia, w_a = k_e q_a S_m(a):
+            # force on region atom i:  q_i sum_a w_a (x_i - y_a) / r_ia^3
+            # force on environment a:  w_a sum_i q_i (y_a - x_i) / r_ia^3
+            g, yc, inv_r, w = aux["g"], aux["yc"], aux["inv_r"], aux["w"]
+            b3 = inv_r * inv_r
+            b3 *= inv_r
+            fr = xc * (b3 @ w)[:, None]
+            fr -= b3 @ (yc * w[:, None])
+            fr *= q_env[:, None]
+            f_reg += fr
+            fa = yc * (q_env @ b3)[:, None]
+            fa -= b3.T @ (xc * q_env[:, None])
+            fa *= w[:, None]
             # the switch: sum_m S'(d_m) V_m grad d_m, d_m = |c_m - c_R|, V_m = sum_i q_i phi_im
-            v_m = np.bincount(lm, q_env @ pot, minlength=len(aux["s"]))
-            gm = (aux["ds"] * v_m / aux["d"])[:, None] * aux["dc"]  # dE/dc_m
-            fa -= (gm / aux["sizes"][:, None])[lm]
-            f_reg += gm.sum(axis=0) / n
-            f_env[aux["atoms"]] = fa
+            # (unswitched potential of molecule m at i); S' = 0 off the switching shell
+            ds, d, sel = aux["ds"], aux["d"], aux["sel"]
+            u = q_env @ inv_r
+            u *= g["kq"].take(sel)
+            v_m = np.bincount(g["local_mol"].take(sel), u, minlength=len(d))
+            v_m *= ds
+            np.divide(v_m, d, out=v_m, where=d > 0)  # S' V_m / d_m (S' = 0 where d_m = 0)
+            f_reg += (v_m @ aux["dc"]) / n  # sum_m dE/dc_m, dE/dc_m = v_m dc_m
+            v_m *= g["inv_sizes"][:, 0]
+            np.negative(v_m, out=v_m)  # each atom of molecule m (charged or not) gets -dE/dc_m / n_m
+            f_all = aux["dc"].take(g["local_mol"], axis=0)
+            f_all *= v_m.take(g["local_mol"])[:, None]
+            flat_sel = g["flat_rows"].take(sel, axis=0).ravel()  # 1-D fancy indexing: ~3x faster than rows
+            f_all.reshape(-1)[flat_sel] += fa.reshape(-1)
+            f_env.reshape(-1)[g["flat_atoms"]] = f_all.reshape(-1)
+            n_inside = int(np.count_nonzero(aux["s"]))
 
-        dip = np.linalg.norm(q.T @ (x - x.mean(axis=0)), axis=1) * units.E_NM_DEBYE
+        dip_env = q_env @ xc
+        dip_vac = q_vac @ xc
         extras = {
             "charges": q_env,
             "charges_vacuum": q_vac,
-            "dipole_debye": float(dip[0]),
-            "dipole_vacuum_debye": float(dip[1]),
-            "n_molecules_in_cutoff": 0 if aux is None else int(aux["inside"].size),
+            "dipole_debye": math.sqrt(float(dip_env @ dip_env)) * units.E_NM_DEBYE,
+            "dipole_vacuum_debye": math.sqrt(float(dip_vac @ dip_vac)) * units.E_NM_DEBYE,
+            "n_molecules_in_cutoff": n_inside,
         }
         return TermResult(energy=energy, region_forces=f_reg, environment_forces=f_env, extras=extras)
 
