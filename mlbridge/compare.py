@@ -446,6 +446,7 @@ def _check_summary(r, has_qeq: bool) -> dict:
         "drift_status": _drift_status(r),
         "drift_kjmol_per_ns": r.fit.slope_kjmol_per_ns,
         "drift_stderr_kjmol_per_ns": r.fit.slope_stderr_kjmol_per_ns,
+        "drift_residual_statistical_inefficiency": r.fit.statistical_inefficiency,
         "drift_kT_per_ns_per_dof": r.fit.slope_kT_per_ns_per_dof,
         "threshold_kT_per_ns_per_dof": r.threshold_kT_per_ns_per_dof,
         "fluctuation_ratio": r.fit.fluctuation_ratio,

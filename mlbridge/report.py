@@ -31,7 +31,7 @@ def check_section(r: CheckResult, plot_name: str = "") -> list:
         "| quantity | value |",
         "|---|---|",
         f"| timestep | {r.dt_fs} fs (NVT {r.equilibration_ps} ps, then NVE {r.nve_ps} ps at {r.temperature_k} K start) |",
-        f"| drift | {_f(fit.slope_kjmol_per_ns)} ± {_f(fit.slope_stderr_kjmol_per_ns)} kJ/mol/ns |",
+        f"| drift | {_f(fit.slope_kjmol_per_ns)} ± {_f(fit.slope_stderr_kjmol_per_ns)} kJ/mol/ns (1 sigma, for correlated residuals: statistical inefficiency g = {_f(fit.statistical_inefficiency, '.1f')}) |",
         f"| drift per DOF | {_f(fit.slope_kjmol_per_ns_per_dof)} kJ/mol/ns = {_f(fit.slope_kT_per_ns_per_dof)} kT/ns (threshold {r.threshold_kT_per_ns_per_dof} kT/ns, N_dof = {fit.n_dof}) |",
         f"| fluctuation ratio std(E_tot)/std(E_kin) | {_f(fit.fluctuation_ratio)} |",
         f"| speed ({sp.threads} threads) | {_f(sp.ms_per_step, '.2f')} ms/step, {_f(sp.ns_per_day, '.2f')} ns/day |",

@@ -29,6 +29,36 @@ def test_fit_recovers_known_slope():
         fit_drift([0, 1], [0, 1], n_dof=1, temperature_k=300)
 
 
+def _ar1(rng, n, phi, sigma):
+    """AR(1) noise e_k = phi e_(k-1) + N(0, sigma^2), started in its stationary state."""
+    e = np.empty(n)
+    e[0] = rng.normal(0, sigma / np.sqrt(1 - phi * phi))
+    kicks = rng.normal(0, sigma, n)
+    for k in range(1, n):
+        e[k] = phi * e[k - 1] + kicks[k]
+    return e
+
+
+def test_drift_error_accounts_for_correlated_residuals():
+    # AR(1) residuals have statistical inefficiency g = (1 + phi) / (1 - phi) exactly (textbook
+    # result for a first-order autoregressive process; 19 for phi = 0.9). With the correction,
+    # a zero drift lies beyond 2 sigma in ~5% of runs; the least-squares error alone would put
+    # it there in about half of them.
+    rng = np.random.default_rng(11)
+    phi, n, runs = 0.9, 1001, 200
+    t_ps = np.arange(n) * 0.002
+    beyond, beyond_white, gs = 0, 0, []
+    for _ in range(runs):
+        fit = fit_drift(t_ps, _ar1(rng, n, phi, 0.1), n_dof=100, temperature_k=300)
+        gs.append(fit.statistical_inefficiency)
+        beyond += abs(fit.slope_kjmol_per_ns) > 2 * fit.slope_stderr_kjmol_per_ns
+        white = fit.slope_stderr_kjmol_per_ns / np.sqrt(fit.statistical_inefficiency)
+        beyond_white += abs(fit.slope_kjmol_per_ns) > 2 * white
+    assert np.median(gs) == pytest.approx((1 + phi) / (1 - phi), rel=0.3)
+    assert beyond / runs < 0.12
+    assert beyond_white / runs > 0.3
+
+
 def water_box(n_side=2.4):
     ff = app.ForceField("amber14/tip3p.xml")
     m = app.Modeller(app.Topology(), [] * unit.nanometer)
