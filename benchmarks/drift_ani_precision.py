@@ -1,4 +1,5 @@
-"""Energy conservation of the ANI term in float32 and float64: the demo ligand alone in vacuum.
+"""Energy conservation of the ANI term in float32 and float64: the demo ligand alone in vacuum,
+and (--medium water) the `ml` treatment of the demo system through the report's own check.
 
 In water the ligand holds 60 of ~7,000 degrees of freedom, so a precision effect of the ML term
 is diluted ~100x in the per-DOF drift and buried under the water's own scatter. Here every
@@ -7,11 +8,14 @@ NVT (Langevin, 1/ps, 300 K) for --nvt-ps, then NVE (velocity Verlet) for --nve-p
 every 10 steps, drift fitted by mlbridge's own ``fit_drift`` (with its autocorrelation-aware
 error). Same seeds for both precisions, so the pairs start alike.
 
-Results go to benchmarks/results/ani_precision_vacuum.json, one entry per (precision, dt, seed);
+In water (--medium water) it runs ``check_setup`` on `ml` with the ANI term in each precision
+(0.5 ps NVT + --nve-ps NVE, OpenMM at 2 threads, region terms beside the classical forces).
+
+Results go to benchmarks/results/ani_precision_<medium>.json, one entry per (precision, dt, seed);
 a rerun skips entries already there (resumable), so the study can be split over sessions.
 
-    .venv/bin/python benchmarks/drift_ani_precision.py [--precisions float32 float64]
-        [--dts 0.5 1.0] [--seeds 1 2 3] [--nve-ps 10]
+    .venv/bin/python benchmarks/drift_ani_precision.py [--medium vacuum|water]
+        [--precisions float32 float64] [--dts 0.5 1.0] [--seeds 1 2 3] [--nve-ps 10]
 """
 import argparse
 import fcntl
@@ -32,7 +36,7 @@ from mlbridge.solvate import solvate
 from mlbridge.terms.ani import make_term
 from mlbridge.units import kT_kjmol
 
-OUT = Path(__file__).parent / "results" / "ani_precision_vacuum.json"
+RESULTS = Path(__file__).parent / "results"
 
 
 class AniOnly:
@@ -111,6 +115,26 @@ def run(solv, precision, dt_fs, seed, nvt_ps, nve_ps):
     }
 
 
+def run_water(solv, precision, dt_fs, seed, nvt_ps, nve_ps):
+    from mlbridge.build import apply_treatment
+    from mlbridge.drift import check_setup
+
+    built = apply_treatment(solv, "ml", term_options={"ani": {"precision": precision}})
+    r = check_setup(built, dt_fs=dt_fs, equilibration_ps=nvt_ps, nve_ps=nve_ps, threads=2,
+                    report_interval=10, seed=seed, progress=False)
+    return {
+        "precision": precision, "dt_fs": dt_fs, "seed": seed, "nvt_ps": nvt_ps, "nve_ps": nve_ps,
+        "n_dof": r.fit.n_dof,
+        "drift_kT_per_ns_per_dof": r.fit.slope_kT_per_ns_per_dof,
+        "drift_2sigma_kT_per_ns_per_dof": r.drift_2sigma_kT_per_ns_per_dof,
+        "statistical_inefficiency": r.fit.statistical_inefficiency,
+        "fluctuation_ratio": r.fit.fluctuation_ratio,
+        "mean_temperature_k": float("nan"),
+        "ms_per_step": r.speed.ms_per_step,
+        "ani_ms_per_call": r.speed.terms_ms.get("ani1x", float("nan")),
+    }
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--precisions", nargs="+", default=["float32", "float64"])
@@ -118,9 +142,14 @@ def main():
     ap.add_argument("--seeds", nargs="+", type=int, default=[1, 2])
     ap.add_argument("--nvt-ps", type=float, default=2.0)
     ap.add_argument("--nve-ps", type=float, default=10.0)
-    ap.add_argument("--out", type=Path, default=OUT)
+    ap.add_argument("--medium", choices=["vacuum", "water"], default="vacuum")
+    ap.add_argument("--out", type=Path, default=None)
     a = ap.parse_args()
+    a.out = a.out or RESULTS / f"ani_precision_{a.medium}.json"
+    if a.medium == "water" and a.nvt_ps == 2.0 and a.nve_ps == 10.0:  # the defaults are for vacuum
+        a.nvt_ps, a.nve_ps = 0.5, 2.0
     set_threads(1)
+    runner = run if a.medium == "vacuum" else run_water
     solv = solvate(from_file(DEMO_LIGAND, name="LIG"))
     done = json.loads(a.out.read_text()) if a.out.exists() else []
     key = lambda e: (e["precision"], e["dt_fs"], e["seed"], e["nve_ps"])  # noqa: E731
@@ -130,7 +159,7 @@ def main():
             for p in a.precisions:
                 if (p, dt, seed, a.nve_ps) in have:
                     continue
-                e = run(solv, p, dt, seed, a.nvt_ps, a.nve_ps)
+                e = runner(solv, p, dt, seed, a.nvt_ps, a.nve_ps)
                 print(json.dumps(e), flush=True)
                 a.out.parent.mkdir(parents=True, exist_ok=True)
                 with open(a.out.with_suffix(".lock"), "w") as lock:  # several runners may append

@@ -159,7 +159,10 @@ def region_info(solv: SolvatedSystem, with_environment: bool) -> RegionInfo:
 def _term_options(treatment: Treatment, module: str, model: str, term_options: dict) -> dict:
     opts = dict(term_options.get(module, {}))
     if module == "ani":
+        from .terms.ani import DEFAULT_PRECISION
+
         opts.setdefault("model", model)
+        opts.setdefault("precision", DEFAULT_PRECISION)  # stated in the report either way
     return opts
 
 

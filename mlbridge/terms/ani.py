@@ -57,12 +57,29 @@ Measured against torchani's stock ensemble (energy + forces by autograd), see
 - **Built once**: species and element blocks per term; scatter indices per list rebuild; packed
   weights per (parameters, element, precision), shared between terms.
 
-Precision: ``precision="float32"`` (default) or ``"float64"``. float32 is the default because it
-measured faster: 9.7 ms vs 16.8 ms per call for acetaminophen on 1 thread (the networks' matmuls,
-most of the cost, run at about half the rate in float64), and it is what torchani itself runs.
-Its numbers are close to float64: energy 6e-5 kJ/mol apart (the self energies, -515 hartree of the
-total, are summed in float64 in both modes; the networks' part is float32), forces 1.6e-5 of
-max |F|. NVE drift is measured separately by the lead; if it asks for float64, set it here.
+Precision: ``precision="float32"`` (default) or ``"float64"``, chosen by measured drift and speed
+(benchmarks/drift_ani_precision.py, results in benchmarks/results/):
+
+- speed: float64 costs 1.6-1.8x as much per call (demo ligand, 1 thread: 8.7-9.6 vs 14.1-15.7 ms;
+  the networks' matmuls, most of the cost, run at about half the rate);
+- drift, ligand alone in vacuum (all 48 degrees of freedom feel only ANI, 10 ps NVE, two seeds):
+  at 0.5 fs float32 +0.002 / -0.072, float64 -0.018 / +0.058 kT/ns/DOF; at 1 fs float32
+  +0.13 / +0.13, float64 -0.09 / -0.06. The scatter between seeds is as large as any difference
+  between the precisions (at 1 fs float32 came out above float64 twice: possibly a small heating,
+  not resolved by two runs);
+- in water the ligand holds 48 of ~7,000 degrees of freedom, so even 0.2 kT/ns per ligand degree
+  of freedom is 0.0014 kT/ns per degree of freedom of the system, a seventh of the warning
+  threshold. In-water runs (``--medium water``: `ml`, 0.5 fs, 0.5 ps NVT + 2 ps NVE, three
+  seeds, +- 2 sigma ~0.01): float32 -0.000, -0.003, +0.011; float64 -0.010, -0.008, -0.010
+  kT/ns/DOF (classical alone at 0.5 fs, earlier runs: -0.008, -0.012). Both within the 0.01
+  threshold on average; the float32 runs sit ~0.012 higher, more than the vacuum bound on the
+  ligand's own share allows, so this is read as scatter of 2 ps runs, not yet as a precision
+  effect (more seeds would settle it).
+
+So float32 (what torchani itself runs; 1.3-1.4x faster per MD step in water). Its numbers are close to float64: energy 6e-5 kJ/mol
+apart (the self energies, -515 hartree of the total, are summed in float64 in both modes; the
+networks' part is float32), forces 1.6e-5 of max |F|. Use float64 for a ligand alone in vacuum
+or when a long NVE run must conserve energy in the ligand's own degrees of freedom.
 
 ``extras`` of each result:
 - ``member_energies_kjmol``: list of the 8 members' total energies, kJ/mol;
