@@ -22,19 +22,30 @@ def ml64(solvated):
     return apply_treatment(solvated, "ml", term_options={"ani": {"precision": "float64"}})
 
 
-def test_region_force_equals_torchani(solvated):
+def test_region_force_equals_torchani(solvated, ml64):
+    region = list(solvated.region)
+    z = [a.element.atomic_number for a in solvated.topology.atoms() if a.index in set(region)]
+    x = solvated.positions[region]
+    e64_ref, f64_ref, _ = stock_energy_forces(stock_ensemble("ani1x", "float64"), z, x)
+    # float64: the region force inside OpenMM equals torchani's float64 model to 1e-6 relative
+    ctx = context(ml64.system, "CPU")
+    e, f = energy_forces(ctx, ml64.positions, groups={1})
+    assert e == pytest.approx(e64_ref, rel=1e-6)
+    assert np.abs(f[region] - f64_ref).max() <= 1e-6 * np.abs(f64_ref).max()
+    others = np.setdiff1d(np.arange(ml64.system.getNumParticles()), region)
+    assert np.all(f[others] == 0)
+    # float32 (the default): same energy to 1e-6; forces no further from the float64 reference
+    # than torchani's own float32 model is (both carry float32 rounding, in different orders,
+    # ~1e-5 of the largest force component; a fixed bound on their difference was flaky)
     built = apply_treatment(solvated, "ml")
     ctx = context(built.system, "CPU")
-    region = list(built.region)
     e, f = energy_forces(ctx, built.positions, groups={1})
-    stock = stock_ensemble("ani1x", "float32")
-    z = [a.element.atomic_number for a in built.topology.atoms() if a.index in set(region)]
-    e_ref, f_ref, _ = stock_energy_forces(stock, z, built.positions[region])
+    e_ref, f_ref, _ = stock_energy_forces(stock_ensemble("ani1x", "float32"), z, x)
     assert e == pytest.approx(e_ref, rel=1e-6)
-    # forces: 1e-6 of the largest force component (float32 autograd vs our hand-written backward)
-    assert np.abs(f[region] - f_ref).max() <= 1e-5 * np.abs(f_ref).max() + 1e-3
-    others = np.setdiff1d(np.arange(built.system.getNumParticles()), region)
-    assert np.all(f[others] == 0)
+    stock_err = np.abs(f_ref - f64_ref).max()
+    print(f"float32 force error vs float64: ours {np.abs(f[region] - f64_ref).max():.2e}, torchani {stock_err:.2e}")
+    assert np.abs(f[region] - f64_ref).max() <= 2.0 * stock_err + 1e-6 * np.abs(f64_ref).max()
+    assert np.all(f[list(others)] == 0)
 
 
 def test_finite_differences_full_system(ml64, solvated):
