@@ -158,8 +158,7 @@ def _unwrapped(xr: np.ndarray, tree: tuple, box: Optional[np.ndarray]) -> np.nda
     cached result is only ever the exact result for these inputs.
     """
     last = getattr(_LAST_UNWRAP, "entry", None)
-    if (last is not None and last[2] == tree and np.array_equal(last[0], xr)
-            and (box is None if last[1] is None else box is not None and np.array_equal(last[1], box))):
+    if last is not None and last[2] == tree and _same_input(last[0], last[1], xr, box):
         return last[3]
     out = unwrap(xr, tree, box)
     out.setflags(write=False)
@@ -269,7 +268,7 @@ class RegionTermForce:
         out = None
         if pending is not None:
             t0 = time.perf_counter()
-            if _same(pending, pos, box):
+            if _same_input(pending.positions, pending.box, pos, box):
                 try:
                     out = pending.future.result()  # re-raises the term's own error
                 finally:
@@ -286,11 +285,12 @@ class RegionTermForce:
         return result.energy, forces
 
 
-def _same(pending: _Pending, pos: np.ndarray, box: Optional[np.ndarray]) -> bool:
-    if not np.array_equal(pending.positions, pos):
+def _same_input(pos_a, box_a, pos_b, box_b) -> bool:
+    """Positions and box (either may be None) equal bit for bit."""
+    if not np.array_equal(pos_a, pos_b):
         return False
-    return (pending.box is None and box is None) or (
-        pending.box is not None and box is not None and np.array_equal(pending.box, box))
+    return (box_a is None and box_b is None) or (
+        box_a is not None and box_b is not None and np.array_equal(box_a, box_b))
 
 
 def _quiet_wait(future: Future) -> None:

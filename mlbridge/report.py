@@ -48,8 +48,9 @@ def check_section(r: CheckResult, plot_name: str = "") -> list:
             lines.append("| region terms beside the classical forces | no (MLBRIDGE_SERIAL_TERMS is set): terms run one after the classical forces |")
     for t in r.metadata.get("terms", []):
         prec = t.get("options", {}).get("precision")
-        extra = (f", precision {prec}" + (" (the default, chosen by measured NVE drift and speed: see the "
-                                           "docstring of mlbridge.terms.ani)" if prec == "float32" else "")) if prec else ""
+        extra = f", precision {prec}" if prec else ""
+        if prec == "float32":
+            extra += " (the default, chosen by measured NVE drift and speed: see the docstring of mlbridge.terms.ani)"
         lines.append(f"| term `{t['name']}` (group {t['group']}) | reference {t['reference']}, dispersion {t['dispersion']}, elements {', '.join(t['elements'][:8])}{'...' if len(t['elements']) > 8 else ''}{extra} |")
     u = r.uncertainty
     if u:

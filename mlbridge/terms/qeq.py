@@ -372,7 +372,7 @@ class QEqTerm(RegionTerm):
     # ---- pieces, public so tests and reports can inspect them -------------------------------
     def hardness_matrix(self, region_nm) -> np.ndarray:
         """H (kJ/mol/e^2): J_i on the diagonal, gamma_ij off it."""
-        return self._hardness(np.asarray(region_nm, dtype=float))[0]
+        return self._hardness(self._centred(np.asarray(region_nm, dtype=float))[1])[0]
 
     def electronegativity(self, region_nm) -> np.ndarray:
         """chi (kJ/mol/e) of the mode at this geometry."""
@@ -383,14 +383,20 @@ class QEqTerm(RegionTerm):
 
     def environment_potential(self, region_nm, box_nm=None, environment_nm=None) -> np.ndarray:
         """phi (kJ/mol/e) at each region atom, switched, by whole molecules."""
-        return self._potential(np.asarray(region_nm, dtype=float), box_nm, environment_nm)[0]
+        x = np.asarray(region_nm, dtype=float)
+        return self._potential(*self._centred(x), box_nm, environment_nm)[0]
 
-    def _hardness(self, x):
-        """H (n, n) and gamma'(r_ij)/r_ij (n, n, zero on the diagonal), as full matrices.
+    def _centred(self, x):
+        """The region's geometric centre and its coordinates relative to it."""
+        centre = self._mean_weights @ x
+        return centre, x - centre
+
+    def _hardness(self, xc):
+        """H (n, n) and gamma'(r_ij)/r_ij (n, n, zero on the diagonal), as full matrices, from
+        centred coordinates xc (|x|^2 + |x'|^2 - 2 x.x' then loses < 1e-13 relative).
 
         gamma' = k_e [2/sqrt(pi) exp(-u^2) / (sigma r) - erf(u) / r^2], u = r/sigma.
         """
-        xc = x - self._mean_weights @ x  # centred: |x|^2 + |x'|^2 - 2 x.x' loses < 1e-13 relative
         xx = np.square(xc) @ _ONES3
         r = xc @ xc.T
         r *= -2.0
@@ -425,10 +431,9 @@ class QEqTerm(RegionTerm):
         first_local = np.repeat(seg, sizes)
         atoms = self._order[np.repeat(self._starts[mols], sizes) + (np.arange(total) - first_local)]
         uniform = int(sizes[0]) if sizes.size and np.all(sizes == sizes[0]) else None
-        charges = self.env_charges[atoms]
         return dict(mols=mols, atoms=atoms, local_mol=np.repeat(np.arange(mols.size), sizes),
                     first_local=first_local, seg=seg, sizes=sizes.astype(float), uniform=uniform,
-                    charges=charges, kq=units.COULOMB_KJMOL_NM * charges,
+                    kq=units.COULOMB_KJMOL_NM * self.env_charges[atoms],
                     flat_atoms=(3 * atoms[:, None] + _XYZ).ravel(),
                     flat_rows=(3 * np.arange(total)[:, None] + _XYZ),
                     average=(np.tile(np.eye(3), (uniform, 1)) / uniform) if uniform else None,
@@ -498,13 +503,13 @@ class QEqTerm(RegionTerm):
         self.list_builds += 1
         return group
 
-    def _potential(self, x, box_nm, env_nm):
+    def _potential(self, centre, xc, box_nm, env_nm):
         """phi and what the forces need (see energy_forces), or (zeros, None) with nothing in reach.
 
         Every listed molecule takes part; those at or beyond the cutoff have S = S' = 0 and
         contribute exactly zero (cheaper than selecting the ones inside at every call).
         """
-        n = len(x)
+        n = len(xc)
         if self.n_env == 0:
             return np.zeros(n), None
         if env_nm is None:
@@ -515,7 +520,6 @@ class QEqTerm(RegionTerm):
         y = np.asarray(env_nm, dtype=float)
         if y.shape != (self.n_env, 3):
             raise ValueError(f"environment_nm has shape {y.shape}, expected ({self.n_env}, 3)")
-        centre = self._mean_weights @ x
         box = inv_box = w_min = None
         if box_nm is not None:
             box = np.asarray(box_nm, dtype=float).reshape(3, 3)
@@ -558,7 +562,6 @@ class QEqTerm(RegionTerm):
         yc = yc.take(sel, axis=0)
         # |x_i - y_a|^2 in one product: [x, |x|^2, 1] . [-2 y, 1, |y|^2] (no (n, a, 3) temporaries;
         # relative to the region centre the cancellation costs < 1e-13 relative)
-        xc = x - centre
         xa = np.empty((n, 5))
         xa[:, :3] = xc
         xa[:, 3] = np.square(xc) @ _ONES3
@@ -571,7 +574,7 @@ class QEqTerm(RegionTerm):
         np.sqrt(inv_r, out=inv_r)
         np.divide(1.0, inv_r, out=inv_r)  # (n, a): 1/r_ia
         phi = inv_r @ w
-        aux = dict(g=g, sel=sel, xc=xc, yc=yc, inv_r=inv_r, w=w, s=s, ds=ds, d=d, dc=dc)
+        aux = dict(g=g, sel=sel, yc=yc, inv_r=inv_r, w=w, s=s, ds=ds, d=d, dc=dc)
         return phi, aux
 
     # ---- the contract ----------------------------------------------------------------------
@@ -580,8 +583,9 @@ class QEqTerm(RegionTerm):
         n = self.region.n_atoms
         if x.shape != (n, 3):
             raise ValueError(f"region_nm has shape {x.shape}; this QEq term was built for ({n}, 3)")
-        h, dg_r = self._hardness(x)
-        phi, aux = self._potential(x, box_nm, environment_nm)
+        centre, xc = self._centred(x)
+        h, dg_r = self._hardness(xc)
+        phi, aux = self._potential(centre, xc, box_nm, environment_nm)
         if self.mode == "anchored":
             # chi(x) = -H(x) q0 makes q0 the vacuum solution exactly; in the field the charges are
             # q0 + dq with dq the QEq response to phi alone under sum dq = 0
@@ -604,7 +608,6 @@ class QEqTerm(RegionTerm):
         np.negative(c, out=c)
         f_reg = x * c.sum(axis=1)[:, None]
         f_reg -= c @ x
-        xc = x - x.mean(axis=0) if aux is None else aux["xc"]
         f_env = None
         n_inside = 0
         if self.n_env:
